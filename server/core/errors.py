@@ -1,0 +1,53 @@
+"""Pellucid's exception hierarchy.
+
+    PellucidError                 every error the core raises on purpose
+    ├── ModelLoadError            a spec, weights file or archive that cannot become a model
+    ├── SpecError                 a model spec or policy with a missing, unknown or mistyped key
+    ├── ImageDecodeError          bytes that are not an image we can read, or one too large
+    ├── UnsupportedLayerError     a layer name that does not exist or cannot serve the request
+    ├── BadParameterError         a parameter outside its allowed range
+    ├── DataError                 an image folder or manifest that cannot be audited
+    ├── StoreError                the data folder or its database cannot be used
+    └── Cancelled                 work stopped because its cancel token was set
+
+Each message says what was received, what was expected and, where it helps, what to do next.
+The web layer maps these to 4xx responses and the CLI to one line on stderr and a non-zero exit.
+"""
+
+from __future__ import annotations
+
+
+class PellucidError(Exception):
+    """Base class of every error Pellucid raises on purpose."""
+
+
+class ModelLoadError(PellucidError):
+    pass
+
+
+class SpecError(PellucidError):
+    pass
+
+
+class ImageDecodeError(PellucidError):
+    pass
+
+
+class UnsupportedLayerError(PellucidError):
+    pass
+
+
+class BadParameterError(PellucidError):
+    pass
+
+
+class DataError(PellucidError):
+    pass
+
+
+class StoreError(PellucidError):
+    pass
+
+
+class Cancelled(PellucidError):
+    """Raised inside long work when its cancel token is set; jobs turn it into 'cancelled'."""

@@ -2,6 +2,7 @@
 
     PellucidError                 every error the core raises on purpose
     ├── ModelLoadError            a spec, weights file or archive that cannot become a model
+    ├── ModelOutputError          a model whose forward returns something we cannot score (NaN, no tensor)
     ├── SpecError                 a model spec or policy with a missing, unknown or mistyped key
     ├── ImageDecodeError          bytes that are not an image we can read, or one too large
     ├── UnsupportedLayerError     a layer name that does not exist or cannot serve the request
@@ -22,6 +23,10 @@ class PellucidError(Exception):
 
 
 class ModelLoadError(PellucidError):
+    pass
+
+
+class ModelOutputError(PellucidError):
     pass
 
 

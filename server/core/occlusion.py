@@ -1,0 +1,527 @@
+"""Occlusion sensitivity: how much the target probability drops when a square of the input is hidden.
+
+Method: Zeiler & Fergus, "Visualizing and Understanding Convolutional Networks", ECCV 2014, §4.2 —
+slide a grey square over the image and record the probability of the class of interest at each
+position. The paper fixes no patch size, stride or grey value; Pellucid's defaults (patch 16,
+stride 8, baseline = the image's own per-channel mean) are our own choice.
+
+Positions. Along each axis the patch's top-left corner takes the values 0, stride, 2·stride, …
+up to ``size − patch``, plus one last position flush with the far border when ``(size − patch)``
+is not a multiple of the stride, so every pixel is covered by at least one position.
+
+Aggregation. ``grid[i, j]`` is the drop ``p(x) − p(x occluded at position (i, j))``. The map at
+input resolution, ``drop[y, x]``, is the mean of ``grid`` over all positions whose patch covers
+pixel (y, x). Positive values mean hiding that area lowers the target's probability (the model
+relies on it); negative values mean hiding it raises the probability.
+
+Engines (all exact except ``approximate``):
+
+- ``naive``: one forward per position, as a first hand-written loop would do; kept for the
+  benchmarks and as a reference.
+- ``batched``: occluded copies built with tensor ops and run in batches under ``inference_mode``.
+- ``incremental``: keeps every layer's output for the clean image and recomputes only the region
+  each patch can reach (see :mod:`server.core.incremental`).
+- ``approximate``: coarse-to-fine adaptive stride, refining only where the map changes; its
+  result says so (``engine == "approximate"``, ``evaluated`` marks the positions really run).
+
+``method="auto"`` picks the fastest exact engine that applies and records which one ran.
+A heatmap is evidence about this model on this image, not proof of what it has learned.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable, Optional
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from .errors import BadParameterError
+from .progress import CancelToken, ProgressFn, step
+
+__all__ = [
+    "OcclusionResult",
+    "occlusion_map",
+    "occlusion_positions",
+    "make_baseline",
+    "compare_to_exact",
+    "MAX_POSITIONS",
+    "BASELINES",
+    "OUTPUTS",
+    "METHODS",
+]
+
+MAX_POSITIONS = 65_536
+BASELINES = ("mean", "zero", "blur")
+OUTPUTS = ("softmax", "sigmoid", "logit")
+METHODS = ("auto", "batched", "naive")
+
+# Blur baseline: a Gaussian with sigma = patch / 4 (at least 1 px), so detail at the scale of the
+# patch is removed while colour and coarse shading stay; our own choice, documented in the result.
+BLUR_SIGMA_PER_PATCH = 0.25
+
+# Default batch for the batched engine when the caller gives none; chosen from bench runs on
+# 2-core machines (larger batches stop paying once a batch's activations leave the cache).
+_DEFAULT_BATCH_PIXELS = 32 * 224 * 224
+
+
+@dataclass
+class OcclusionResult:
+    """An occlusion sensitivity map and everything that produced it.
+
+    ``drop``: (H, W) float32 at input resolution, mean of ``grid`` over covering positions.
+    ``grid``: (rows, cols) float32, the drop at each position (interpolated where
+    ``evaluated`` is False, which only happens for ``engine == "approximate"``).
+    ``tops`` / ``lefts``: (rows,) / (cols,) int, the patch's top-left corner per position.
+    ``top_class``: (rows, cols) int, the most probable class under each occlusion (−1 where not
+    evaluated).
+    """
+
+    drop: np.ndarray
+    grid: np.ndarray
+    tops: np.ndarray
+    lefts: np.ndarray
+    top_class: np.ndarray
+    evaluated: np.ndarray
+    base_score: float
+    target: int
+    patch: int
+    stride: int
+    baseline: str
+    output: str
+    engine: str
+    method: str
+    batch_size: int
+    seconds: float
+    n_forwards: int
+    input_shape: tuple[int, ...]
+    approximate: bool = False
+    details: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def n_positions(self) -> int:
+        return int(self.grid.size)
+
+    def parameters(self) -> dict[str, Any]:
+        """The settings that produced this map, for result JSON and reports."""
+        return {
+            "method": self.method,
+            "engine": self.engine,
+            "approximate": self.approximate,
+            "target": self.target,
+            "patch": self.patch,
+            "stride": self.stride,
+            "baseline": self.baseline,
+            "output": self.output,
+            "batch_size": self.batch_size,
+            "n_positions": self.n_positions,
+            "n_forwards": self.n_forwards,
+            "seconds": self.seconds,
+            "base_score": self.base_score,
+            **self.details,
+        }
+
+    def __repr__(self) -> str:
+        return (
+            f"OcclusionResult(engine={self.engine!r}, target={self.target}, patch={self.patch}, "
+            f"stride={self.stride}, grid={self.grid.shape}, base_score={self.base_score:.4f}, "
+            f"seconds={self.seconds:.3f})"
+        )
+
+
+# ---------------------------------------------------------------------------------------------
+# validation
+
+
+def _as_count(value: Any, name: str, *, minimum: int = 1) -> int:
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise BadParameterError(f"{name} must be a whole number of pixels; received {value!r}.")
+    if isinstance(value, float) or not isinstance(value, numbers.Integral):
+        fv = float(value)
+        if math.isnan(fv) or math.isinf(fv):
+            raise BadParameterError(f"{name} must be a finite whole number; received {value!r}.")
+        if not fv.is_integer():
+            raise BadParameterError(f"{name} must be a whole number of pixels; received {value!r}.")
+        value = int(fv)
+    value = int(value)
+    if value < minimum:
+        raise BadParameterError(f"{name} must be at least {minimum}; received {value}.")
+    return value
+
+
+def occlusion_positions(size: int, patch: int, stride: int) -> np.ndarray:
+    """Top-left coordinates along one axis: 0, stride, … plus a last one flush with the border."""
+    last = size - patch
+    pos = list(range(0, last + 1, stride))
+    if pos[-1] != last:
+        pos.append(last)
+    return np.asarray(pos, dtype=np.int64)
+
+
+def _check_input(x: Any) -> torch.Tensor:
+    if not isinstance(x, torch.Tensor):
+        raise BadParameterError(f"x must be a torch.Tensor of shape (1, C, H, W); received {type(x).__name__}.")
+    if x.ndim != 4 or x.shape[0] != 1:
+        raise BadParameterError(
+            f"x must have shape (1, C, H, W) (one preprocessed image); received shape {tuple(x.shape)}."
+        )
+    if not x.is_floating_point():
+        raise BadParameterError(f"x must be a floating-point tensor; received dtype {x.dtype}.")
+    if not bool(torch.isfinite(x).all()):
+        raise BadParameterError("x contains NaN or infinite values; check the preprocessing.")
+    return x
+
+
+# ---------------------------------------------------------------------------------------------
+# baselines
+
+
+def _gaussian_blur(x: torch.Tensor, sigma: float) -> torch.Tensor:
+    """Separable Gaussian blur of (1, C, H, W) with replicated borders."""
+    radius = max(1, int(math.ceil(3.0 * sigma)))
+    t = torch.arange(-radius, radius + 1, dtype=x.dtype, device=x.device)
+    k = torch.exp(-0.5 * (t / sigma) ** 2)
+    k = k / k.sum()
+    c = x.shape[1]
+    kh = k.view(1, 1, -1, 1).repeat(c, 1, 1, 1)
+    kw = k.view(1, 1, 1, -1).repeat(c, 1, 1, 1)
+    y = F.pad(x, (0, 0, radius, radius), mode="replicate")
+    y = F.conv2d(y, kh, groups=c)
+    y = F.pad(y, (radius, radius, 0, 0), mode="replicate")
+    return F.conv2d(y, kw, groups=c)
+
+
+def make_baseline(
+    x: torch.Tensor, baseline: str | float | torch.Tensor, *, patch: int
+) -> tuple[torch.Tensor, str]:
+    """The (1, C, H, W) fill used inside the patch, and a short description of it.
+
+    ``"mean"``: per-channel mean of this image; ``"zero"``: 0 in normalised space (the dataset
+    mean when the spec normalises with it); a float: that constant in normalised space;
+    ``"blur"``: a Gaussian-blurred copy (sigma = patch/4, at least 1 px); a tensor broadcastable to
+    (1, C, H, W), e.g. a per-channel dataset mean of shape (C,) or (C, 1, 1).
+    """
+    _, c, h, w = x.shape
+    if isinstance(baseline, torch.Tensor):
+        b = baseline.detach().to(dtype=x.dtype, device=x.device)
+        if b.ndim == 1 and b.shape[0] == c:
+            b = b.view(1, c, 1, 1)
+        elif b.ndim == 3:
+            b = b.unsqueeze(0)
+        try:
+            b = b.expand(1, c, h, w).contiguous()
+        except RuntimeError:
+            raise BadParameterError(
+                f"a baseline tensor must broadcast to the input's (1, {c}, {h}, {w}); received shape "
+                f"{tuple(baseline.shape)}. Give (C,), (C, 1, 1) or (1, C, H, W)."
+            ) from None
+        if not bool(torch.isfinite(b).all()):
+            raise BadParameterError("baseline tensor contains NaN or infinite values.")
+        return b, f"tensor{tuple(baseline.shape)}"
+    if isinstance(baseline, bool):
+        raise BadParameterError(f"baseline must be one of {BASELINES}, a number or a tensor; received {baseline!r}.")
+    if isinstance(baseline, numbers.Real):
+        v = float(baseline)
+        if not math.isfinite(v):
+            raise BadParameterError(f"baseline constant must be finite; received {baseline!r}.")
+        return torch.full_like(x, v), f"constant {v:g}"
+    if baseline == "mean":
+        return x.mean(dim=(2, 3), keepdim=True).expand_as(x).contiguous(), "mean"
+    if baseline == "zero":
+        return torch.zeros_like(x), "zero"
+    if baseline == "blur":
+        sigma = max(1.0, BLUR_SIGMA_PER_PATCH * patch)
+        return _gaussian_blur(x, sigma), f"blur sigma={sigma:g}"
+    raise BadParameterError(
+        f"baseline must be one of {BASELINES}, a number or a tensor; received {baseline!r}."
+    )
+
+
+# ---------------------------------------------------------------------------------------------
+# scoring and occluded batches
+
+
+def _scores(logits: torch.Tensor, target: int, output: str) -> torch.Tensor:
+    """Target score per row of (B, K) logits."""
+    if output == "softmax":
+        return torch.softmax(logits.double(), dim=1)[:, target]
+    if output == "sigmoid":
+        return torch.sigmoid(logits[:, target].double())
+    return logits[:, target].double()
+
+
+def _occluded_batch(
+    x: torch.Tensor, base: torch.Tensor, tops: torch.Tensor, lefts: torch.Tensor, patch: int
+) -> torch.Tensor:
+    """(B, C, H, W): copies of x with base pasted in the patch at each (top, left)."""
+    _, _, h, w = x.shape
+    ys = torch.arange(h, device=x.device)
+    xs = torch.arange(w, device=x.device)
+    rows = (ys[None, :] >= tops[:, None]) & (ys[None, :] < tops[:, None] + patch)
+    cols = (xs[None, :] >= lefts[:, None]) & (xs[None, :] < lefts[:, None] + patch)
+    mask = (rows[:, :, None] & cols[:, None, :]).unsqueeze(1)
+    return torch.where(mask, base, x)
+
+
+def _logits(model: nn.Module, batch: torch.Tensor) -> torch.Tensor:
+    out = model(batch)
+    if not isinstance(out, torch.Tensor) or out.ndim != 2 or out.shape[0] != batch.shape[0]:
+        shape = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
+        raise BadParameterError(
+            f"the model must return logits of shape (N, K); for a batch of {batch.shape[0]} it returned {shape}."
+        )
+    return out
+
+
+Evaluator = Callable[[torch.Tensor, torch.Tensor], torch.Tensor]
+
+
+def _run_positions(
+    evaluate: Evaluator,
+    tops: torch.Tensor,
+    lefts: torch.Tensor,
+    batch_size: int,
+    *,
+    done_before: int,
+    total: int,
+    progress: Optional[ProgressFn],
+    cancel: Optional[CancelToken],
+) -> torch.Tensor:
+    """Evaluate logits for every (top, left) pair in batches, reporting progress between them."""
+    chunks = []
+    n = tops.shape[0]
+    for start in range(0, n, batch_size):
+        step(done_before + start, total, progress=progress, cancel=cancel)
+        stop = min(n, start + batch_size)
+        chunks.append(evaluate(tops[start:stop], lefts[start:stop]))
+    step(done_before + n, total, progress=progress, cancel=cancel)
+    return torch.cat(chunks) if chunks else torch.empty(0)
+
+
+def _aggregate(grid: np.ndarray, tops: np.ndarray, lefts: np.ndarray, patch: int, h: int, w: int) -> np.ndarray:
+    """Mean of grid over every position whose patch covers each pixel: (H, W) float32."""
+    ys = np.arange(h)
+    xs = np.arange(w)
+    rcover = ((ys[None, :] >= tops[:, None]) & (ys[None, :] < tops[:, None] + patch)).astype(np.float64)
+    ccover = ((xs[None, :] >= lefts[:, None]) & (xs[None, :] < lefts[:, None] + patch)).astype(np.float64)
+    total = rcover.T @ grid.astype(np.float64) @ ccover
+    count = np.outer(rcover.sum(0), ccover.sum(0))
+    return (total / count).astype(np.float32)
+
+
+def _default_batch(x: torch.Tensor, n_positions: int) -> int:
+    _, _, h, w = x.shape
+    return int(max(1, min(n_positions, _DEFAULT_BATCH_PIXELS // (h * w))))
+
+
+# ---------------------------------------------------------------------------------------------
+# public entry point
+
+
+def occlusion_map(
+    model: nn.Module,
+    x: torch.Tensor,
+    *,
+    target: int | None = None,
+    patch: int = 16,
+    stride: int = 8,
+    baseline: str | float | torch.Tensor = "mean",
+    output: str = "softmax",
+    batch_size: int | None = None,
+    method: str = "auto",
+    refine_tolerance: float = 0.01,
+    progress: Optional[ProgressFn] = None,
+    cancel: Optional[CancelToken] = None,
+) -> OcclusionResult:
+    """Occlusion sensitivity of ``model`` at ``x`` for class ``target``.
+
+    ``model``: returns logits (N, K) for input (N, C, H, W). ``x``: (1, C, H, W), already
+    preprocessed. ``target``: class index, default the top-1 class of the unoccluded input.
+    ``patch`` / ``stride``: square patch side and step in pixels. ``baseline``: see
+    :func:`make_baseline`. ``output``: ``"softmax"`` or ``"sigmoid"`` probabilities, or
+    ``"logit"`` (the raw score). ``method``: one of :data:`METHODS`. ``refine_tolerance``: for
+    ``method="approximate"`` only, the change in score between neighbouring coarse positions above
+    which the cell between them is evaluated at full resolution.
+
+    Returns an :class:`OcclusionResult`; ``drop`` is (H, W) float32.
+    """
+    x = _check_input(x)
+    _, c, h, w = x.shape
+    patch = _as_count(patch, "patch")
+    stride = _as_count(stride, "stride")
+    if patch > min(h, w):
+        raise BadParameterError(
+            f"patch must fit inside the {h}×{w} image (at most {min(h, w)} px); received {patch}."
+        )
+    if output not in OUTPUTS:
+        raise BadParameterError(f"output must be one of {OUTPUTS}; received {output!r}.")
+    if method not in METHODS:
+        raise BadParameterError(f"method must be one of {METHODS}; received {method!r}.")
+    tops = occlusion_positions(h, patch, stride)
+    lefts = occlusion_positions(w, patch, stride)
+    n_pos = len(tops) * len(lefts)
+    if n_pos > MAX_POSITIONS:
+        raise BadParameterError(
+            f"patch {patch} with stride {stride} on a {h}×{w} image gives {n_pos:,} positions, more than the "
+            f"limit of {MAX_POSITIONS:,}; use a larger stride."
+        )
+    if batch_size is not None:
+        batch_size = _as_count(batch_size, "batch_size")
+    if isinstance(refine_tolerance, bool) or not isinstance(refine_tolerance, numbers.Real) or not (
+        math.isfinite(float(refine_tolerance)) and float(refine_tolerance) >= 0
+    ):
+        raise BadParameterError(f"refine_tolerance must be a finite number ≥ 0; received {refine_tolerance!r}.")
+    base, base_desc = make_baseline(x, baseline, patch=patch)
+
+    model.eval()
+    t0 = time.perf_counter()
+    with torch.inference_mode():
+        logits0 = _logits(model, x)
+        k = logits0.shape[1]
+        if target is None:
+            target = int(logits0[0].argmax())
+        else:
+            if isinstance(target, bool) or not isinstance(target, numbers.Integral):
+                raise BadParameterError(f"target must be a class index (int); received {target!r}.")
+            target = int(target)
+            if not 0 <= target < k:
+                raise BadParameterError(
+                    f"target must be a class index in 0…{k - 1} (the model has {k} classes); received {target}."
+                )
+        base_score = float(_scores(logits0, target, output)[0])
+
+        engine, evaluate, bs, details = _choose_engine(model, x, base, patch, method, batch_size, n_pos)
+        tt = torch.as_tensor(tops)
+        ll = torch.as_tensor(lefts)
+        if method == "approximate":
+            from ._approximate import adaptive_grid
+
+            grid_t, top_t, evaluated, n_eval = adaptive_grid(
+                evaluate, tt, ll, stride=stride, batch_size=bs, target=target, output=output,
+                base_score=base_score, tolerance=float(refine_tolerance), progress=progress, cancel=cancel,
+            )
+            grid = grid_t.numpy().astype(np.float32)
+            top_class = top_t.numpy()
+            details = {**details, "exact_engine": engine, "refine_tolerance": float(refine_tolerance)}
+            engine = "approximate"
+            n_forwards = n_eval + 1
+        else:
+            ty = tt.repeat_interleave(len(lefts))
+            tx = ll.repeat(len(tops))
+            logits = _run_positions(
+                evaluate, ty, tx, bs, done_before=0, total=n_pos, progress=progress, cancel=cancel
+            )
+            scores = _scores(logits, target, output)
+            grid = (base_score - scores).view(len(tops), len(lefts)).numpy().astype(np.float32)
+            top_class = logits.argmax(dim=1).view(len(tops), len(lefts)).numpy()
+            evaluated = np.ones(grid.shape, dtype=bool)
+            n_forwards = n_pos + 1
+    drop = _aggregate(grid, tops, lefts, patch, h, w)
+    seconds = time.perf_counter() - t0
+    return OcclusionResult(
+        drop=drop,
+        grid=grid,
+        tops=tops,
+        lefts=lefts,
+        top_class=top_class.astype(np.int64),
+        evaluated=evaluated,
+        base_score=base_score,
+        target=target,
+        patch=patch,
+        stride=stride,
+        baseline=base_desc,
+        output=output,
+        engine=engine,
+        method=method,
+        batch_size=bs,
+        seconds=seconds,
+        n_forwards=n_forwards,
+        input_shape=tuple(x.shape),
+        approximate=engine == "approximate",
+        details=details,
+    )
+
+
+def _choose_engine(
+    model: nn.Module,
+    x: torch.Tensor,
+    base: torch.Tensor,
+    patch: int,
+    method: str,
+    batch_size: int | None,
+    n_pos: int,
+) -> tuple[str, Evaluator, int, dict[str, Any]]:
+    """Pick the engine: returns (name, evaluate(tops, lefts) -> logits, batch size, details)."""
+    if method == "naive":
+
+        def naive(ty: torch.Tensor, tx: torch.Tensor) -> torch.Tensor:
+            outs = []
+            for top, left in zip(ty.tolist(), tx.tolist()):
+                xo = x.clone()
+                xo[:, :, top : top + patch, left : left + patch] = base[:, :, top : top + patch, left : left + patch]
+                outs.append(_logits(model, xo))
+            return torch.cat(outs)
+
+        return "naive", naive, batch_size or 1, {}
+
+    if method in ("incremental", "approximate"):
+        from .incremental import IncrementalOcclusion, NotIncremental
+
+        try:
+            engine = IncrementalOcclusion(model, x, base, patch=patch)
+        except NotIncremental as exc:
+            if method == "incremental":
+                from .errors import UnsupportedLayerError
+
+                raise UnsupportedLayerError(
+                    f"incremental occlusion cannot run on this model: {exc} Use method='batched'."
+                ) from None
+            reason = str(exc)
+        else:
+            if method == "incremental" or engine.worthwhile:
+                bs = batch_size or engine.default_batch(n_pos)
+                return "incremental", engine.logits, bs, {"estimated_speedup": engine.estimated_speedup}
+            reason = f"estimated speedup {engine.estimated_speedup:.2f}× is too small"
+        details = {"incremental_skipped": reason}
+    else:
+        details = {}
+
+    def batched(ty: torch.Tensor, tx: torch.Tensor) -> torch.Tensor:
+        return _logits(model, _occluded_batch(x, base, ty, tx, patch))
+
+    return "batched", batched, batch_size or _default_batch(x, n_pos), details
+
+
+def compare_to_exact(result: OcclusionResult, model: nn.Module, x: torch.Tensor, *, baseline: Any = "mean",
+                     exact: OcclusionResult | None = None) -> dict[str, float]:
+    """Error of an approximate map against the exact one with the same settings.
+
+    Returns max and mean absolute difference on the position grid and on the (H, W) map, plus
+    the share of positions actually evaluated. ``baseline`` must be the value originally passed
+    (the result keeps only its description); pass ``exact`` to reuse an exact map.
+    """
+    if exact is None:
+        exact = occlusion_map(
+            model, x, target=result.target, patch=result.patch, stride=result.stride, baseline=baseline,
+            output=result.output, method="auto",
+        )
+    if exact.grid.shape != result.grid.shape:
+        raise BadParameterError(
+            f"the exact map's grid {exact.grid.shape} does not match the result's {result.grid.shape}; "
+            "compare maps made with the same patch, stride and input size."
+        )
+    gd = np.abs(exact.grid.astype(np.float64) - result.grid)
+    md = np.abs(exact.drop.astype(np.float64) - result.drop)
+    return {
+        "grid_max_abs": float(gd.max()),
+        "grid_mean_abs": float(gd.mean()),
+        "map_max_abs": float(md.max()),
+        "map_mean_abs": float(md.mean()),
+        "evaluated_fraction": float(result.evaluated.mean()),
+        "exact_engine": exact.engine,
+    }

@@ -4,11 +4,13 @@
     ├── ModelLoadError            a spec, weights file or archive that cannot become a model
     ├── ModelOutputError          a model whose forward returns something we cannot score (NaN, no tensor)
     ├── SpecError                 a model spec or policy with a missing, unknown or mistyped key
-    ├── ImageDecodeError          bytes that are not an image we can read, or one too large
+    ├── ImageDecodeError          bytes that are not an image we can read
+    │   └── ImageTooLargeError    an image over the byte or pixel limit
     ├── UnsupportedLayerError     a layer name that does not exist or cannot serve the request
     ├── BadParameterError         a parameter outside its allowed range
     ├── DataError                 an image folder or manifest that cannot be audited
     ├── StoreError                the data folder or its database cannot be used
+    ├── NotFoundError             an image, job or run id that this server or store does not hold
     └── Cancelled                 work stopped because its cancel token was set
 
 Each message says what was received, what was expected and, where it helps, what to do next.
@@ -38,6 +40,10 @@ class ImageDecodeError(PellucidError):
     pass
 
 
+class ImageTooLargeError(ImageDecodeError):
+    pass
+
+
 class UnsupportedLayerError(PellucidError):
     pass
 
@@ -51,6 +57,10 @@ class DataError(PellucidError):
 
 
 class StoreError(PellucidError):
+    pass
+
+
+class NotFoundError(PellucidError):
     pass
 
 

@@ -19,7 +19,7 @@ import numpy as np
 import torch
 from PIL import Image, ImageOps, UnidentifiedImageError
 
-from .errors import ImageDecodeError
+from .errors import ImageDecodeError, ImageTooLargeError
 from .spec import ModelSpec
 
 # Defaults chosen for a local tool: large enough for camera photos, small enough that a crafted
@@ -72,7 +72,7 @@ def read_image(
             raise ImageDecodeError(f"image {str(path)!r} does not exist or is not a file")
         size = path.stat().st_size
         if size > max_bytes:
-            raise ImageDecodeError(_too_big_bytes(name, size, max_bytes))
+            raise ImageTooLargeError(_too_big_bytes(name, size, max_bytes))
         data = path.read_bytes()
     else:
         data = bytes(source)
@@ -80,7 +80,7 @@ def read_image(
     if len(data) == 0:
         raise ImageDecodeError(f"{name!r} is empty (0 bytes); expected a PNG, JPEG, GIF, BMP, TIFF or WebP image")
     if len(data) > max_bytes:
-        raise ImageDecodeError(_too_big_bytes(name, len(data), max_bytes))
+        raise ImageTooLargeError(_too_big_bytes(name, len(data), max_bytes))
 
     digest = hashlib.sha256(data).hexdigest()
     notes: list[str] = []
@@ -91,7 +91,7 @@ def read_image(
             img = Image.open(io.BytesIO(data))
             width, height = img.size
             if width * height > max_pixels:
-                raise ImageDecodeError(
+                raise ImageTooLargeError(
                     f"{name!r} is {width}×{height} = {width * height:,} pixels, over the limit of {max_pixels:,}; "
                     "resize it first (this limit guards against decompression bombs)"
                 )
@@ -104,7 +104,7 @@ def read_image(
     except ImageDecodeError:
         raise
     except Image.DecompressionBombError:
-        raise ImageDecodeError(
+        raise ImageTooLargeError(
             f"{name!r} declares too many pixels (a possible decompression bomb); the limit is {max_pixels:,}"
         ) from None
     except UnidentifiedImageError:

@@ -1,0 +1,51 @@
+"""The FastAPI app factory: pages, JSON API and jobs over one :class:`Workspace`."""
+
+from __future__ import annotations
+
+from contextlib import asynccontextmanager
+from pathlib import Path
+from typing import AsyncIterator
+
+from fastapi import FastAPI
+from fastapi.staticfiles import StaticFiles
+from fastapi.templating import Jinja2Templates
+
+from .. import __version__
+from .errors import install_error_handlers
+from .settings import Settings
+from .workspace import Workspace
+
+REPO_ROOT = Path(__file__).resolve().parents[2]
+TEMPLATES_DIR = REPO_ROOT / "templates"
+STATIC_DIR = REPO_ROOT / "static"
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings or Settings()
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        workspace = Workspace(settings)
+        app.state.workspace = workspace
+        try:
+            yield
+        finally:
+            workspace.close()
+
+    app = FastAPI(
+        title="Pellucid",
+        version=__version__,
+        description="See why an image classifier makes its calls: kernels, feature maps, attribution maps, audits.",
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    # Autoescape on for every template (Jinja2Templates enables it for .html).
+    app.state.templates = Jinja2Templates(directory=str(TEMPLATES_DIR))
+    app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
+    install_error_handlers(app)
+
+    from .routers import pages, status
+
+    app.include_router(status.router)
+    app.include_router(pages.router)
+    return app

@@ -1,0 +1,66 @@
+"""Core errors → HTTP responses with a plain sentence, never a traceback."""
+
+from __future__ import annotations
+
+import logging
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse
+from starlette.exceptions import HTTPException as StarletteHTTPException
+
+from ..core import errors as E
+
+log = logging.getLogger("pellucid.web")
+
+_STATUS: list[tuple[type[E.PellucidError], int]] = [
+    (E.ImageTooLargeError, 413),
+    (E.ImageDecodeError, 415),
+    (E.UnsupportedLayerError, 404),
+    (E.BadParameterError, 422),
+    (E.SpecError, 422),
+    (E.ModelLoadError, 422),
+    (E.ModelOutputError, 422),
+    (E.DataError, 422),
+    (E.StoreError, 503),
+    (E.NotFoundError, 404),
+    (E.Cancelled, 409),
+]
+
+
+def status_for(exc: E.PellucidError) -> int:
+    for kind, status in _STATUS:
+        if isinstance(exc, kind):
+            return status
+    return 400
+
+
+def _plain_validation_message(exc: RequestValidationError) -> str:
+    parts = []
+    for err in exc.errors()[:5]:
+        loc = ".".join(str(p) for p in err.get("loc", ()) if p not in ("body", "query", "path"))
+        parts.append(f"{loc or 'request'}: {err.get('msg', 'invalid value')}")
+    return "invalid request — " + "; ".join(parts)
+
+
+def install_error_handlers(app: FastAPI) -> None:
+    @app.exception_handler(E.PellucidError)
+    async def _pellucid(_request: Request, exc: E.PellucidError) -> JSONResponse:
+        return JSONResponse({"detail": str(exc), "error": type(exc).__name__}, status_code=status_for(exc))
+
+    @app.exception_handler(RequestValidationError)
+    async def _validation(_request: Request, exc: RequestValidationError) -> JSONResponse:
+        return JSONResponse({"detail": _plain_validation_message(exc), "error": "ValidationError"}, status_code=422)
+
+    @app.exception_handler(StarletteHTTPException)
+    async def _http(_request: Request, exc: StarletteHTTPException) -> JSONResponse:
+        return JSONResponse({"detail": str(exc.detail), "error": "HTTPError"}, status_code=exc.status_code)
+
+    @app.exception_handler(Exception)
+    async def _unexpected(_request: Request, exc: Exception) -> JSONResponse:
+        log.exception("unexpected error")
+        return JSONResponse(
+            {"detail": f"internal error ({type(exc).__name__}); the server keeps running — see its log",
+             "error": "InternalError"},
+            status_code=500,
+        )

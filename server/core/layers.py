@@ -47,7 +47,7 @@ from torch.utils.flop_counter import FlopCounterMode
 
 from server.core.errors import BadParameterError, UnsupportedLayerError
 
-__all__ = ["LayerInfo", "LayerMap", "layer_map", "DRY_RUN_SEED"]
+__all__ = ["LayerInfo", "LayerMap", "layer_map", "conv_layer_names", "is_conv_module", "DRY_RUN_SEED"]
 
 DRY_RUN_SEED = 0
 
@@ -460,16 +460,24 @@ def _is_leaf(module: nn.Module) -> bool:
     return not any(True for _ in module.children()) or isinstance(module, _COMPUTING_TYPES)
 
 
-def _is_conv(module: nn.Module) -> bool:
+def is_conv_module(module: nn.Module) -> bool:
+    """A 2-D convolution: an ``nn.Conv2d`` (or subclass), or any other module that directly owns a
+    4-D ``weight`` (graph modules from ``torch.export.unflatten`` and TorchScript modules lose the
+    class). Transposed and 3-D convolutions are not included."""
     if isinstance(module, nn.Conv2d):
         return True
-    # Graph modules from torch.export.unflatten lose the class; a directly owned 4-D weight remains.
-    weight = module._parameters.get("weight")
-    return (
-        isinstance(weight, torch.Tensor)
-        and weight.dim() == 4
-        and not isinstance(module, (nn.ConvTranspose2d, nn.modules.conv._ConvNd))
-    )
+    if isinstance(module, nn.modules.conv._ConvNd):
+        return False
+    weight = getattr(module, "weight", None)
+    if not isinstance(weight, torch.Tensor) or weight.dim() != 4:
+        return False
+    original = getattr(module, "original_name", "")  # TorchScript keeps the Python class name here
+    return original not in ("ConvTranspose2d", "Conv3d")
+
+
+def conv_layer_names(model: nn.Module) -> list[str]:
+    """Qualified names of the 2-D convolutions in definition order; needs no forward pass."""
+    return [name for name, mod in model.named_modules() if name and is_conv_module(mod)]
 
 
 def _check_input_shape(input_shape: Any) -> tuple[int, int, int]:
@@ -590,7 +598,10 @@ def layer_map(model: nn.Module, *, input_shape: tuple[int, int, int]) -> LayerMa
         macs = sum(module_flops.values()) // 2 if module_flops is not None else (0 if record.calls else None)
         notes: list[str] = []
         if record.calls == 0:
-            notes.append("not called in the dry run")
+            if any(seen.get(f"{name}.{child}", _Seen()).calls for child, _ in mod.named_children()):
+                notes.append("not called itself; its children ran")
+            else:
+                notes.append("not called in the dry run")
         elif record.calls > 1:
             notes.append(f"called {record.calls} times; output shape of the first call, largest receptive field")
         if record.shapes_differ:
@@ -614,7 +625,7 @@ def layer_map(model: nn.Module, *, input_shape: tuple[int, int, int]) -> LayerMa
                 macs_analytic=record.macs_analytic if isinstance(mod, (nn.Conv2d, nn.Linear)) and leaf else None,
                 calls=record.calls,
                 call_index=record.call_index,
-                is_conv=_is_conv(modules[name]),
+                is_conv=is_conv_module(modules[name]),
                 rf_size=rf.size if tracked else ((shape[1], shape[2]) if rf is not None and rf.status == "global" else None),
                 rf_jump=rf.jump if tracked else None,
                 rf_start=rf.start if tracked else None,

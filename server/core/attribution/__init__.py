@@ -1,0 +1,56 @@
+"""Attribution maps behind one registry, their faithfulness scores and the sanity check.
+
+    compute_attribution(name, model, x, target=…, params={…}) -> AttributionMap
+    list_methods()                                             -> JSON-able method descriptions
+    faithfulness(model, x, amap.map, target=…)                 -> deletion / insertion curves + AUC
+    rank_methods({name: FaithfulnessResult})                   -> methods ordered by those scores
+    sanity_check(name, model, x, …)                            -> cascading randomisation verdict
+
+Every map is evidence about this model on this image, not proof of what it has learned; the
+reviewer's own domain rules decide what ships.
+"""
+
+from __future__ import annotations
+
+from .baselines import Normalization
+from .params import Param, ParamSchema
+from .registry import (
+    Context,
+    Method,
+    UnknownMethodError,
+    compute_attribution,
+    get_method,
+    list_methods,
+    method_names,
+    register,
+)
+from .result import AttributionMap
+
+# Importing a method module registers it; the order here is the order the UI lists them.
+from . import gradcam, gradient, smoothgrad, integrated_gradients, rise, occlusion  # noqa: E402,F401
+from .gradcam import conv_like_layers  # noqa: E402
+from .faithfulness import Curve, FaithfulnessResult, faithfulness, rank_methods  # noqa: E402
+from .sanity import SanityResult, SanityStep, sanity_check  # noqa: E402
+
+__all__ = [
+    "AttributionMap",
+    "Context",
+    "Curve",
+    "FaithfulnessResult",
+    "Method",
+    "Normalization",
+    "Param",
+    "ParamSchema",
+    "SanityResult",
+    "SanityStep",
+    "UnknownMethodError",
+    "compute_attribution",
+    "conv_like_layers",
+    "faithfulness",
+    "get_method",
+    "list_methods",
+    "method_names",
+    "rank_methods",
+    "register",
+    "sanity_check",
+]

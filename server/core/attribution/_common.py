@@ -1,0 +1,125 @@
+"""Helpers shared by the attribution methods: model state, scores, input checks."""
+
+from __future__ import annotations
+
+import contextlib
+from typing import Iterator, Optional
+
+import torch
+from torch import nn
+
+from ..errors import BadParameterError, ModelOutputError
+
+OUTPUT_KINDS = ("softmax", "sigmoid")
+
+
+@contextlib.contextmanager
+def evaluating(model: nn.Module) -> Iterator[nn.Module]:
+    """Put every submodule in eval mode for the block and restore each one's flag afterwards.
+
+    Parameters' ``requires_grad`` is never touched: the methods take gradients with
+    ``torch.autograd.grad(..., inputs=x)``, which leaves ``.grad`` of the weights alone and is
+    safe when other threads use the same model.
+    """
+    flags = [(m, m.training) for m in model.modules()]
+    model.eval()
+    try:
+        yield model
+    finally:
+        for m, flag in flags:
+            m.training = flag
+
+
+@contextlib.contextmanager
+def grad_enabled() -> Iterator[None]:
+    """Gradients on, even when the caller sits inside ``torch.no_grad`` or inference mode."""
+    with torch.inference_mode(False), torch.enable_grad():
+        yield
+
+
+def check_input(x: object) -> torch.Tensor:
+    """The (1, C, H, W) float input, detached; a clear error for anything else."""
+    if not isinstance(x, torch.Tensor):
+        raise BadParameterError(
+            f"the input must be a torch.Tensor of shape (1, C, H, W); received {type(x).__name__}"
+        )
+    if x.ndim != 4 or x.shape[0] != 1:
+        raise BadParameterError(
+            f"the input must have shape (1, C, H, W) (one prepared image); received {tuple(x.shape)}"
+        )
+    if not x.is_floating_point():
+        raise BadParameterError(f"the input must be a float tensor; received dtype {x.dtype}")
+    if not bool(torch.isfinite(x).all()):
+        raise BadParameterError("the input contains NaN or infinite values; check the preprocessing")
+    # Leave inference mode's tensors behind: autograd cannot use them.
+    with torch.inference_mode(False):
+        return x.detach().clone()
+
+
+def check_output_kind(output_kind: str) -> str:
+    if output_kind not in OUTPUT_KINDS:
+        raise BadParameterError(
+            f"output_kind must be one of {', '.join(OUTPUT_KINDS)}; received {output_kind!r}"
+        )
+    return output_kind
+
+
+def logits_of(model: nn.Module, x: torch.Tensor) -> torch.Tensor:
+    """The model's (N, K) scores for (N, C, H, W) inputs, checked."""
+    out = model(x)
+    if not isinstance(out, torch.Tensor) or out.ndim != 2 or out.shape[0] != x.shape[0]:
+        got = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
+        raise ModelOutputError(
+            f"the model must return logits of shape (N, K) for N={x.shape[0]} inputs; received {got}"
+        )
+    return out
+
+
+def probabilities(logits: torch.Tensor, output_kind: str) -> torch.Tensor:
+    """Class probabilities from (N, K) logits: softmax across classes or per-class sigmoid."""
+    if output_kind == "sigmoid":
+        return torch.sigmoid(logits)
+    return torch.softmax(logits, dim=1)
+
+
+def resolve_target(logits: torch.Tensor, target: Optional[int]) -> tuple[int, str]:
+    """(class index, "given" | "top-1") for a (1, K) logit row."""
+    k = int(logits.shape[1])
+    if target is None:
+        return int(logits[0].argmax()), "top-1"
+    if isinstance(target, bool) or not isinstance(target, int):
+        try:
+            as_int = int(target)  # numpy integers, "3"
+        except (TypeError, ValueError):
+            raise BadParameterError(
+                f"target must be a class index from 0 to {k - 1}; received {target!r}"
+            ) from None
+        if isinstance(target, float) and as_int != target:
+            raise BadParameterError(f"target must be a class index from 0 to {k - 1}; received {target!r}")
+        target = as_int
+    if not 0 <= target < k:
+        raise BadParameterError(
+            f"target class index {target} is out of range: the model has {k} classes (0 to {k - 1})"
+        )
+    return target, "given"
+
+
+def input_gradient(
+    model: nn.Module, xb: torch.Tensor, target: int
+) -> tuple[torch.Tensor, torch.Tensor]:
+    """(∂S_target/∂x, S_target) for a batch (B, C, H, W); S is the pre-softmax score.
+
+    Each sample's score depends only on its own input in eval mode, so the gradient of the
+    summed scores is the per-sample gradient.
+    """
+    with grad_enabled():
+        xb = xb.detach().requires_grad_(True)
+        score = logits_of(model, xb)[:, target]
+        (grad,) = torch.autograd.grad(score.sum(), xb)
+    return grad.detach(), score.detach()
+
+
+def batches(n: int, size: int) -> Iterator[tuple[int, int]]:
+    """(start, stop) index pairs covering range(n) in chunks of ``size``."""
+    for start in range(0, n, size):
+        yield start, min(n, start + size)

@@ -1,0 +1,188 @@
+"""One registry for attribution methods: name → function, parameter schema, description.
+
+The CLI, the JSON API and the image page list methods with :func:`list_methods` and run any of
+them with :func:`compute_attribution`; adding a method is one module that calls :func:`register`.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from typing import Any, Callable, Mapping, Optional, Protocol
+
+import torch
+from torch import nn
+
+from ..errors import BadParameterError
+from ..progress import CancelToken, ProgressFn
+from . import _common
+from .baselines import Normalization
+from .params import ParamSchema
+from .result import AttributionMap, MethodOutput
+
+__all__ = [
+    "Context",
+    "Method",
+    "UnknownMethodError",
+    "compute_attribution",
+    "get_method",
+    "list_methods",
+    "method_names",
+    "register",
+]
+
+
+class UnknownMethodError(BadParameterError, ValueError):
+    """An attribution method name that is not registered (a 4xx for the web, a ValueError too)."""
+
+
+@dataclass(frozen=True)
+class Context:
+    """What a method needs besides its parameters: how the model's output and input read."""
+
+    output_kind: str = "softmax"  # "softmax" | "sigmoid": how logits become probabilities
+    normalization: Optional[Normalization] = None  # the spec's mean/std, for "black" baselines
+    baseline_input: Optional[torch.Tensor] = None  # a caller-given reference input (1, C, H, W)
+
+
+class MethodFn(Protocol):
+    def __call__(
+        self,
+        model: nn.Module,
+        x: torch.Tensor,
+        *,
+        target: int,
+        params: dict[str, Any],
+        context: Context,
+        progress: Optional[ProgressFn],
+        cancel: Optional[CancelToken],
+    ) -> MethodOutput: ...
+
+
+@dataclass(frozen=True)
+class Method:
+    """A registered method.
+
+    ``cost(params, (H, W))`` estimates the work in forward-pass equivalents (a backward pass
+    counts as two forwards; common practice, no source) so the UI can warn before a long job.
+    """
+
+    name: str
+    title: str
+    fn: MethodFn
+    schema: ParamSchema
+    description: str
+    reference: str
+    signed: bool
+    cost: Callable[[dict[str, Any], tuple[int, int]], float]
+    stochastic: bool = False
+    needs_conv_layer: bool = False
+    uses_gradients: bool = True
+
+    def describe(self) -> dict[str, Any]:
+        defaults = self.schema.validate({})
+        try:
+            cost_224 = float(self.cost(defaults, (224, 224)))
+        except Exception:  # pragma: no cover - a cost formula never fails for defaults
+            cost_224 = None
+        return {
+            "name": self.name,
+            "title": self.title,
+            "description": self.description,
+            "reference": self.reference,
+            "signed": self.signed,
+            "stochastic": self.stochastic,
+            "needs_conv_layer": self.needs_conv_layer,
+            "uses_gradients": self.uses_gradients,
+            "params": self.schema.describe(),
+            "cost_at_defaults_224": cost_224,
+        }
+
+
+_REGISTRY: dict[str, Method] = {}
+
+
+def register(method: Method) -> Method:
+    """Add ``method``; a name registered twice is a programming error (ValueError)."""
+    if method.name in _REGISTRY:
+        raise ValueError(
+            f"attribution method {method.name!r} is already registered; "
+            f"registered methods: {', '.join(sorted(_REGISTRY))}"
+        )
+    if method.stochastic:
+        assert "seed" in method.schema.names, f"stochastic method {method.name} needs a seed parameter"
+    _REGISTRY[method.name] = method
+    return method
+
+
+def method_names() -> list[str]:
+    return list(_REGISTRY)
+
+
+def get_method(name: str) -> Method:
+    try:
+        return _REGISTRY[name]
+    except (KeyError, TypeError):
+        raise UnknownMethodError(
+            f"unknown attribution method {name!r}; known methods: {', '.join(_REGISTRY)}"
+        ) from None
+
+
+def list_methods() -> list[dict[str, Any]]:
+    """JSON-able descriptions of every method, in registration order."""
+    return [m.describe() for m in _REGISTRY.values()]
+
+
+def compute_attribution(
+    method: str,
+    model: nn.Module,
+    x: torch.Tensor,
+    *,
+    target: Optional[int] = None,
+    params: Optional[Mapping[str, Any]] = None,
+    output_kind: str = "softmax",
+    normalization: Optional[Normalization] = None,
+    baseline_input: Optional[torch.Tensor] = None,
+    progress: Optional[ProgressFn] = None,
+    cancel: Optional[CancelToken] = None,
+) -> AttributionMap:
+    """Run the registered ``method`` on one prepared image.
+
+    ``model`` maps (N, C, H, W) float tensors to (N, K) logits; ``x`` is (1, C, H, W).
+    ``target`` is the class index to explain (default: the model's top-1 class).
+    ``params`` are validated against the method's schema (strings are accepted, so CLI
+    ``k=v`` pairs can be passed as they are). ``output_kind`` says how the logits become
+    probabilities for the methods that score probabilities (RISE, occlusion).
+    ``normalization`` is the spec's mean/std, needed for "black" or "constant" baselines.
+    The model's eval/train flags are restored afterwards; its weights are not modified.
+    """
+    spec = get_method(method)
+    x = _common.check_input(x)
+    output_kind = _common.check_output_kind(output_kind)
+    checked = spec.schema.validate(params, method=spec.name)
+    context = Context(output_kind=output_kind, normalization=normalization, baseline_input=baseline_input)
+    start = time.perf_counter()
+    with _common.evaluating(model):
+        with torch.inference_mode():
+            logits = _common.logits_of(model, x)
+        index, source = _common.resolve_target(logits, target)
+        out = spec.fn(model, x, target=index, params=dict(checked), context=context,
+                      progress=progress, cancel=cancel)
+    seconds = time.perf_counter() - start
+    amap = out.map
+    h, w = x.shape[-2:]
+    assert amap.shape == (h, w), f"{spec.name} returned a {amap.shape} map for a {(h, w)} input"
+    checked.update(out.resolved)
+    return AttributionMap(
+        map=amap.astype("float32", copy=False),
+        signed=out.signed,
+        method=spec.name,
+        target=index,
+        target_source=source,
+        params=checked,
+        seconds=seconds,
+        n_forwards=out.n_forwards + 1,  # + the forward that resolved the target
+        n_backwards=out.n_backwards,
+        raw=out.raw,
+        extras=out.extras,
+    )

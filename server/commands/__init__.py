@@ -1,0 +1,1 @@
+"""One module per ``pellucid`` subcommand; each exposes ``register(subparsers)``."""

@@ -1,0 +1,212 @@
+"""``pellucid inspect``: every single-image view, headless, written to a folder."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import time
+from pathlib import Path
+from typing import Any
+
+from ._progress import ProgressBar
+
+CAUTION = (
+    "Attribution maps are evidence about this model on this image, not proof of what it has learned; "
+    "deployment decisions follow the reviewer's domain rules and sign-off."
+)
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "inspect",
+        help="write kernels, activations, top-k and attribution maps for one image",
+        description=(
+            "Run one image through a model and write what Pellucid sees into --out: the preprocessed input, "
+            "top-k classes, the first conv layer's kernels, a layer's activation grid, an occlusion map and "
+            "any other attribution method asked for, plus result.json with every setting and fingerprint."
+        ),
+    )
+    p.add_argument("image", type=Path, help="the image file (PNG, JPEG, GIF, BMP, TIFF or WebP)")
+    p.add_argument("--model", default="tilenet", metavar="SPEC",
+                   help="model spec file or bundled model name (default: tilenet, the demo model)")
+    p.add_argument("--out", type=Path, required=True, metavar="DIR", help="folder to write results into")
+    p.add_argument("--layer", default=None, metavar="NAME",
+                   help="layer whose activation grid to draw (default: the last conv layer)")
+    p.add_argument("--sort", choices=("index", "mean", "max"), default="max",
+                   help="order of channels in the activation grid (default: max)")
+    p.add_argument("--top", type=int, default=5, metavar="K", help="how many classes to list (default 5)")
+    p.add_argument("--target", default=None, metavar="CLASS",
+                   help="class to explain, by index or label (default: the model's top-1)")
+    p.add_argument("--no-occlusion", dest="occlusion", action="store_false",
+                   help="skip the occlusion map (it is the slowest view)")
+    p.add_argument("--patch", type=int, default=None, help="occlusion patch side in px (default: input/8)")
+    p.add_argument("--stride", type=int, default=None, help="occlusion stride in px (default: patch/2)")
+    p.add_argument("--baseline", choices=("mean", "zero", "blur"), default="mean",
+                   help="what fills the occluding patch (default: the image's mean colour)")
+    p.add_argument("--engine", default="auto",
+                   help="occlusion engine: auto (fastest exact), batched, incremental, naive, approximate")
+    p.add_argument("--method", action="append", default=[], metavar="NAME",
+                   help="another attribution method to run (repeatable); see --list-methods")
+    p.add_argument("--param", action="append", default=[], metavar="METHOD.KEY=VALUE",
+                   help="a parameter for a method, e.g. integrated_gradients.steps=128")
+    p.add_argument("--list-methods", action="store_true", help="list attribution methods and their parameters")
+    p.add_argument("--trust-pickled", action="store_true", help="allow specs of kind 'pickled'")
+    p.set_defaults(func=_inspect)
+
+
+def _parse_params(items: list[str], methods: list[str]) -> dict[str, dict[str, str]]:
+    from ..core.errors import BadParameterError
+
+    out: dict[str, dict[str, str]] = {}
+    for item in items:
+        key, sep, value = item.partition("=")
+        method, dot, name = key.partition(".")
+        if not sep or not dot or not method or not name:
+            raise BadParameterError(f"--param must look like METHOD.KEY=VALUE (e.g. rise.masks=500), got {item!r}")
+        if method not in methods and method != "occlusion":
+            raise BadParameterError(f"--param {item!r} names method {method!r}, which is not given with --method")
+        out.setdefault(method, {})[name] = value
+    return out
+
+
+def _list_methods() -> int:
+    from ..core.attribution import list_methods
+
+    for m in list_methods():
+        print(f"{m['name']}: {m.get('title') or m.get('description', '')}")
+        for p in m.get("params", []):
+            print(f"    {p['name']} ({p['type']}, default {p['default']!r}): {p.get('help', '')}")
+    return 0
+
+
+def _inspect(args: argparse.Namespace) -> int:
+    if args.list_methods:
+        return _list_methods()
+    from ..core import render
+    from ..core.activations import activations_with_prediction
+    from ..core.attribution import Normalization, compute_attribution, get_method
+    from ..core.bundled import resolve_model_ref
+    from ..core.errors import BadParameterError, UnsupportedLayerError
+    from ..core.kernels import kernel_view, rgb_grid, channel_grid
+    from ..core.layers import layer_map
+    from ..core.models import load_model
+    from ..core.occlusion import occlusion_map
+    from ..core.preprocess import prepare, read_image
+
+    for name in args.method:
+        get_method(name)  # fail early on an unknown name
+    params = _parse_params(args.param, args.method)
+    if args.top < 1:
+        raise BadParameterError(f"--top must be at least 1, got {args.top}")
+
+    image = read_image(args.image)
+    model = load_model(resolve_model_ref(args.model), trust_pickled=args.trust_pickled)
+    prepared = prepare(model.spec, image)
+    x = prepared.tensor
+    target = model.class_index(args.target) if args.target is not None else None
+    out: Path = args.out
+    if out.exists() and not out.is_dir():
+        raise BadParameterError(f"--out {str(out)!r} exists and is not a folder")
+    out.mkdir(parents=True, exist_ok=True)
+    written: dict[str, str] = {}
+
+    def save(name: str, data: bytes) -> None:
+        (out / name).write_bytes(data)
+        written[name.rsplit(".", 1)[0]] = name
+
+    save("input.png", render.encode_png(prepared.display))
+    result: dict[str, Any] = {
+        "tool": "pellucid",
+        "caution": CAUTION,
+        "model": model.summary(),
+        "image": {"path": str(args.image.resolve()), "sha256": image.sha256, "size": list(image.original_size),
+                  "mode": image.original_mode, "format": image.format, "notes": prepared.notes},
+    }
+
+    lmap = None
+    if model.supports_hooks:
+        lmap = layer_map(model.module, input_shape=model.input_shape)
+        result["layer_map"] = lmap.to_dict()
+        first = lmap.first_conv()
+        view = kernel_view(model.module, layer=first.name)
+        try:
+            grid = rgb_grid(view, zoom=None)
+        except UnsupportedLayerError:
+            grid = channel_grid(view, zoom=None)
+        save("kernels.png", render.encode_png(grid.image))
+        result["kernels"] = view.to_dict()
+        layer = args.layer or lmap.last_conv().name
+        acts, pred = activations_with_prediction(model.module, x, layer=layer, labels=model.labels,
+                                                 output_kind=model.output_kind, k=args.top)
+        grid_img, layout = render.activation_grid(acts.maps, order=acts.order(args.sort))
+        save(f"activations_{_safe(layer)}.png", render.encode_png(grid_img))
+        result["activations"] = {
+            "layer": layer, "sort": args.sort, "output_shape": list(acts.output_shape),
+            "layout": layout.to_dict(), "scale": "each channel scaled to its own [min, max]",
+            "channel_mean": [float(v) for v in acts.channel_mean],
+            "channel_max": [float(v) for v in acts.channel_max],
+        }
+    else:
+        from ..core.predict import predict
+
+        pred = predict(model.module, x, labels=model.labels, output_kind=model.output_kind, k=args.top)
+        result["layer_views"] = model.notes[-1] if model.notes else "layer views unavailable for this model"
+    result["prediction"] = pred.to_dict()
+    explained = target if target is not None else pred.top[0].index
+
+    maps: dict[str, Any] = {}
+    if args.occlusion:
+        h, w = model.spec.input.height, model.spec.input.width
+        patch = args.patch or max(2, min(h, w) // 8)
+        stride = args.stride or max(1, patch // 2)
+        t0 = time.perf_counter()
+        occ = occlusion_map(model.module, x, target=explained, patch=patch, stride=stride, baseline=args.baseline,
+                            output=model.output_kind, method=args.engine, progress=ProgressBar("occlusion"))
+        lo, hi = render.value_range(occ.drop, signed=True)
+        save("occlusion_overlay.png", render.encode_png(
+            render.overlay(prepared.display, occ.drop, cmap=render.SIGNED_CMAP, vmin=lo, vmax=hi)))
+        save("occlusion_map.png", render.map_png(occ.drop, signed=True))
+        save("occlusion_colorbar.png", render.colorbar_png(
+            vmin=lo, vmax=hi, cmap=render.SIGNED_CMAP, label=f"drop in p({model.labels[explained]})"))
+        maps["occlusion"] = {**occ.parameters(), "wall_seconds": time.perf_counter() - t0,
+                             "label": model.labels[explained]}
+
+    norm = Normalization(mean=model.spec.preprocess.mean, std=model.spec.preprocess.std)
+    for name in args.method:
+        amap = compute_attribution(name, model.module, x, target=explained, params=params.get(name),
+                                   output_kind=model.output_kind, normalization=norm,
+                                   progress=ProgressBar(name))
+        lo, hi = render.value_range(amap.map, signed=amap.signed)
+        cmap = render.SIGNED_CMAP if amap.signed else render.MAGNITUDE_CMAP
+        save(f"{name}_overlay.png", render.encode_png(
+            render.overlay(prepared.display, amap.map, cmap=cmap, vmin=lo, vmax=hi)))
+        save(f"{name}_map.png", render.map_png(amap.map, signed=amap.signed))
+        maps[name] = amap.summary()
+    result["attribution"] = maps
+    result["files"] = written
+    (out / "result.json").write_text(json.dumps(result, indent=2, default=_json_default) + "\n", encoding="utf-8")
+
+    top = ", ".join(f"{c.label} {c.probability:.3f}" for c in pred.top[:3])
+    print(f"{args.image.name}: {top}")
+    if prepared.notes:
+        print("notes: " + "; ".join(prepared.notes))
+    print(f"wrote {len(written) + 1} files to {out}")
+    return 0
+
+
+def _safe(name: str) -> str:
+    return "".join(c if c.isalnum() or c in "-_" else "_" for c in name) or "layer"
+
+
+def _json_default(value: Any) -> Any:
+    import numpy as np
+
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, Path):
+        return str(value)
+    if isinstance(value, tuple):
+        return list(value)
+    raise TypeError(f"not JSON-able: {type(value).__name__}")

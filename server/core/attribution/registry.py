@@ -166,8 +166,11 @@ def compute_attribution(
         with torch.inference_mode():
             logits = _common.logits_of(model, x)
         index, source = _common.resolve_target(logits, target)
-        out = spec.fn(model, x, target=index, params=dict(checked), context=context,
-                      progress=progress, cancel=cancel)
+        # Tensors the method creates must be usable by autograd even if the caller is inside
+        # torch.inference_mode().
+        with torch.inference_mode(False):
+            out = spec.fn(model, x, target=index, params=dict(checked), context=context,
+                          progress=progress, cancel=cancel)
     seconds = time.perf_counter() - start
     amap = out.map
     h, w = x.shape[-2:]

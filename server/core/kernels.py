@@ -34,11 +34,11 @@ from server.core.layers import conv_layer_names, is_conv_module
 __all__ = [
     "DEAD_FRACTION",
     "DUPLICATE_COSINE",
-    "KernelView",
     "KernelGrid",
+    "KernelView",
+    "channel_grid",
     "kernel_view",
     "rgb_grid",
-    "channel_grid",
 ]
 
 DEAD_FRACTION = 0.01

@@ -47,7 +47,7 @@ from torch.utils.flop_counter import FlopCounterMode
 
 from server.core.errors import BadParameterError, UnsupportedLayerError
 
-__all__ = ["LayerInfo", "LayerMap", "layer_map", "conv_layer_names", "is_conv_module", "DRY_RUN_SEED"]
+__all__ = ["DRY_RUN_SEED", "LayerInfo", "LayerMap", "conv_layer_names", "is_conv_module", "layer_map"]
 
 DRY_RUN_SEED = 0
 

@@ -478,3 +478,16 @@ def test_duplicate_registration_is_a_value_error():
     with pytest.raises(ValueError, match="already registered"):
         register(Method(name="saliency", title="x", fn=get_method("saliency").fn, schema=ParamSchema(()),
                         description="", reference="", signed=False, cost=lambda p, s: 1.0))
+
+
+def test_public_surface_is_pinned():
+    # common practice, no source: the package's public names are declared once and kept stable.
+    import server.core.attribution as attribution
+
+    assert sorted(attribution.__all__) == sorted([
+        "AttributionMap", "Context", "Curve", "FaithfulnessResult", "Method", "Normalization", "Param",
+        "ParamSchema", "SanityResult", "SanityStep", "UnknownMethodError", "compute_attribution",
+        "conv_like_layers", "faithfulness", "get_method", "list_methods", "method_names", "rank_methods",
+        "register", "sanity_check",
+    ])
+    assert all(hasattr(attribution, name) for name in attribution.__all__)

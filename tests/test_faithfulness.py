@@ -52,7 +52,7 @@ def test_curve_shape_endpoints_and_auc(linear_case):
     res = faithfulness(model, x, (w * x)[0, 0].detach().numpy(), target=0, blur_sigma=2.0)
     d, i = res.curves["deletion"], res.curves["insertion"]
     assert len(d.fractions) == 101 and d.fractions[0] == 0.0 and d.fractions[-1] == 1.0
-    p = lambda t: float(torch.softmax(model(t).detach(), dim=1)[0, 0])  # noqa: E731
+    p = lambda t: float(torch.softmax(model(t).detach(), dim=1)[0, 0])
     assert math.isclose(d.scores[0], p(x), rel_tol=1e-6)
     assert math.isclose(d.scores[-1], p(torch.zeros_like(x)), rel_tol=1e-6)
     from server.core.attribution.baselines import blurred
@@ -134,7 +134,7 @@ def test_rank_methods_refuses_mixed_targets(linear_case):
     ({"blur_sigma": -1.0}, "blur_sigma"),
 ])
 def test_bad_arguments(linear_case, kwargs, match):
-    model, w, x = linear_case
+    model, _, x = linear_case
     args = {"saliency": np.zeros((10, 10)), "target": 0, **kwargs}
     sal = args.pop("saliency")
     with pytest.raises(BadParameterError, match=match):
@@ -142,7 +142,7 @@ def test_bad_arguments(linear_case, kwargs, match):
 
 
 def test_cancel_and_progress(linear_case):
-    model, w, x = linear_case
+    model, _, x = linear_case
     seen: list[tuple[int, int]] = []
     faithfulness(model, x, np.zeros((10, 10)), target=0, progress=lambda d, t: seen.append((d, t)))
     assert seen[-1] == (202, 202)

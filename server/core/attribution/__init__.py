@@ -12,7 +12,11 @@ reviewer's own domain rules decide what ships.
 
 from __future__ import annotations
 
+# Importing a method module registers it (in this order, which is the order methods are listed).
+from . import gradcam, gradient, integrated_gradients, occlusion, rise, smoothgrad  # noqa: F401
 from .baselines import Normalization
+from .faithfulness import Curve, FaithfulnessResult, faithfulness, rank_methods
+from .gradcam import conv_like_layers
 from .params import Param, ParamSchema
 from .registry import (
     Context,
@@ -25,12 +29,7 @@ from .registry import (
     register,
 )
 from .result import AttributionMap
-
-# Importing a method module registers it; the order here is the order the UI lists them.
-from . import gradcam, gradient, smoothgrad, integrated_gradients, rise, occlusion  # noqa: E402,F401
-from .gradcam import conv_like_layers  # noqa: E402
-from .faithfulness import Curve, FaithfulnessResult, faithfulness, rank_methods  # noqa: E402
-from .sanity import SanityResult, SanityStep, sanity_check  # noqa: E402
+from .sanity import SanityResult, SanityStep, sanity_check
 
 __all__ = [
     "AttributionMap",

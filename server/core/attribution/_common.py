@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import contextlib
-from typing import Iterator, Optional
+from collections.abc import Iterator
 
 import torch
 from torch import nn
@@ -82,7 +82,7 @@ def probabilities(logits: torch.Tensor, output_kind: str) -> torch.Tensor:
     return torch.softmax(logits, dim=1)
 
 
-def resolve_target(logits: torch.Tensor, target: Optional[int]) -> tuple[int, str]:
+def resolve_target(logits: torch.Tensor, target: int | None) -> tuple[int, str]:
     """(class index, "given" | "top-1") for a (1, K) logit row."""
     k = int(logits.shape[1])
     if target is None:

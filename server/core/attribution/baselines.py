@@ -9,8 +9,8 @@ The model sees normalised tensors, so "black" is not zero: a black pixel becomes
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Optional, Sequence
 
 import numpy as np
 import torch
@@ -41,7 +41,7 @@ class Normalization:
             raise BadParameterError(f"std must be positive and finite; received mean={self.mean}, std={self.std}")
 
     @classmethod
-    def of(cls, mean: Sequence[float], std: Sequence[float]) -> "Normalization":
+    def of(cls, mean: Sequence[float], std: Sequence[float]) -> Normalization:
         return cls(tuple(float(m) for m in mean), tuple(float(s) for s in std))
 
     def pixel(self, value: float, like: torch.Tensor) -> torch.Tensor:
@@ -67,10 +67,10 @@ def make_baseline(
     x: torch.Tensor,
     kind: str,
     *,
-    normalization: Optional[Normalization] = None,
+    normalization: Normalization | None = None,
     value: float = 0.0,
     sigma: float = 8.0,
-    given: Optional[torch.Tensor] = None,
+    given: torch.Tensor | None = None,
 ) -> torch.Tensor:
     """The (1, C, H, W) reference input of ``kind`` for ``x``.
 

@@ -18,8 +18,9 @@ from __future__ import annotations
 
 import math
 import time
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, Mapping, Optional, Union
+from typing import Any
 
 import numpy as np
 import torch
@@ -28,7 +29,15 @@ from torch import nn
 
 from ..errors import BadParameterError
 from ..progress import CancelToken, ProgressFn, step
-from ._common import batches, check_input, check_output_kind, evaluating, logits_of, probabilities, resolve_target
+from ._common import (
+    batches,
+    check_input,
+    check_output_kind,
+    evaluating,
+    logits_of,
+    probabilities,
+    resolve_target,
+)
 from .baselines import blurred
 
 __all__ = ["Curve", "FaithfulnessResult", "faithfulness", "rank_methods"]
@@ -60,12 +69,12 @@ class FaithfulnessResult:
     extras: dict[str, Any] = field(default_factory=dict)
 
     @property
-    def deletion_auc(self) -> Optional[float]:
+    def deletion_auc(self) -> float | None:
         c = self.curves.get("deletion")
         return c.auc if c else None
 
     @property
-    def insertion_auc(self) -> Optional[float]:
+    def insertion_auc(self) -> float | None:
         c = self.curves.get("insertion")
         return c.auc if c else None
 
@@ -99,16 +108,16 @@ def faithfulness(
     x: torch.Tensor,
     saliency: Any,
     *,
-    target: Optional[int] = None,
+    target: int | None = None,
     kinds: tuple[str, ...] = KINDS,
     step_fraction: float = 0.01,
-    deletion_canvas: Optional[torch.Tensor] = None,
+    deletion_canvas: torch.Tensor | None = None,
     blur_sigma: float = 8.0,
     output_kind: str = "softmax",
     batch_size: int = 32,
     seed: int = 0,
-    progress: Optional[ProgressFn] = None,
-    cancel: Optional[CancelToken] = None,
+    progress: ProgressFn | None = None,
+    cancel: CancelToken | None = None,
 ) -> FaithfulnessResult:
     """Deletion and/or insertion curves of ``saliency`` (H, W) for ``model`` at ``x`` (1, C, H, W).
 
@@ -171,7 +180,7 @@ def faithfulness(
 
 
 def rank_methods(
-    results: Mapping[str, Union[FaithfulnessResult, Mapping[str, float]]]
+    results: Mapping[str, FaithfulnessResult | Mapping[str, float]]
 ) -> list[dict[str, Any]]:
     """Methods ordered best first by their deletion AUC (lower better) and insertion AUC (higher better).
 

@@ -9,7 +9,7 @@ a block of them); the default is the last ``nn.Conv2d`` to run.
 
 from __future__ import annotations
 
-from typing import Any, Optional
+from typing import Any
 
 import numpy as np
 import torch
@@ -62,9 +62,9 @@ def _layer_error(model: nn.Module, x: torch.Tensor, message: str) -> Unsupported
 
 def _gradcam(
     model: nn.Module, x: torch.Tensor, *, target: int, params: dict[str, Any], context: Context,
-    progress: Optional[ProgressFn], cancel: Optional[CancelToken],
+    progress: ProgressFn | None, cancel: CancelToken | None,
 ) -> MethodOutput:
-    wanted: Optional[str] = params["layer"] or None
+    wanted: str | None = params["layer"] or None
     modules = dict(model.named_modules())
     if wanted is not None and (wanted not in modules or wanted == ""):
         raise _layer_error(model, x, f"the model has no layer named {wanted!r}")

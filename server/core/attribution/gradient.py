@@ -7,7 +7,7 @@ Gradient × input: the per-channel product x ⊙ ∂S_c/∂x, summed over channe
 
 from __future__ import annotations
 
-from typing import Any, Optional
+from typing import Any
 
 import numpy as np
 import torch
@@ -27,7 +27,7 @@ def saliency_map(grad: torch.Tensor) -> np.ndarray:
 
 def _saliency(
     model: nn.Module, x: torch.Tensor, *, target: int, params: dict[str, Any], context: Context,
-    progress: Optional[ProgressFn], cancel: Optional[CancelToken],
+    progress: ProgressFn | None, cancel: CancelToken | None,
 ) -> MethodOutput:
     step(0, 1, progress=progress, cancel=cancel)
     grad, _ = input_gradient(model, x, target)
@@ -40,7 +40,7 @@ def _saliency(
 
 def _grad_x_input(
     model: nn.Module, x: torch.Tensor, *, target: int, params: dict[str, Any], context: Context,
-    progress: Optional[ProgressFn], cancel: Optional[CancelToken],
+    progress: ProgressFn | None, cancel: CancelToken | None,
 ) -> MethodOutput:
     step(0, 1, progress=progress, cancel=cancel)
     grad, _ = input_gradient(model, x, target)

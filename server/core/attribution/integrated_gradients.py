@@ -10,9 +10,8 @@ above 5% (the paper: 20–300 steps usually get within 5%).
 
 from __future__ import annotations
 
-from typing import Any, Optional
+from typing import Any
 
-import numpy as np
 import torch
 from torch import nn
 
@@ -53,7 +52,7 @@ def path_weights(steps: int, rule: str) -> tuple[torch.Tensor, torch.Tensor]:
 
 def _integrated_gradients(
     model: nn.Module, x: torch.Tensor, *, target: int, params: dict[str, Any], context: Context,
-    progress: Optional[ProgressFn], cancel: Optional[CancelToken],
+    progress: ProgressFn | None, cancel: CancelToken | None,
 ) -> MethodOutput:
     kind = params["baseline"]
     ref = make_baseline(

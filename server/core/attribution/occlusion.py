@@ -8,7 +8,7 @@ Pellucid's own defaults; the paper fixes none.
 
 from __future__ import annotations
 
-from typing import Any, Optional
+from typing import Any
 
 import numpy as np
 import torch
@@ -31,7 +31,7 @@ SCHEMA = ParamSchema((
 
 def _occlusion(
     model: nn.Module, x: torch.Tensor, *, target: int, params: dict[str, Any], context: Context,
-    progress: Optional[ProgressFn], cancel: Optional[CancelToken],
+    progress: ProgressFn | None, cancel: CancelToken | None,
 ) -> MethodOutput:
     from ..occlusion import occlusion_map  # lazily: keeps the registry importable on its own
 

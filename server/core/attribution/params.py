@@ -8,8 +8,9 @@ dict, or raises :class:`BadParameterError` saying what was received and what is 
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, Literal, Mapping, Optional
+from typing import Any, Literal
 
 from ..errors import BadParameterError
 
@@ -30,8 +31,8 @@ class Param:
     kind: Kind
     default: Any
     help: str
-    min: Optional[float] = None
-    max: Optional[float] = None
+    min: float | None = None
+    max: float | None = None
     choices: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
@@ -75,9 +76,10 @@ class Param:
             if text not in self.choices:
                 raise self._bad(value)
             out = text
-        if self.kind in ("int", "float"):
-            if (self.min is not None and out < self.min) or (self.max is not None and out > self.max):
-                raise self._bad(value)
+        if self.kind in ("int", "float") and (
+            (self.min is not None and out < self.min) or (self.max is not None and out > self.max)
+        ):
+            raise self._bad(value)
         return out
 
     def describe(self) -> dict[str, Any]:
@@ -149,7 +151,7 @@ class ParamSchema:
     def names(self) -> tuple[str, ...]:
         return tuple(p.name for p in self.params)
 
-    def validate(self, params: Optional[Mapping[str, Any]], *, method: str = "") -> dict[str, Any]:
+    def validate(self, params: Mapping[str, Any] | None, *, method: str = "") -> dict[str, Any]:
         """A complete dict: defaults filled in, values coerced, unknown keys rejected.
 
         Raises :class:`BadParameterError` naming the offending key and the allowed values.

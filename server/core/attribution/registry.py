@@ -7,8 +7,9 @@ them with :func:`compute_attribution`; adding a method is one module that calls 
 from __future__ import annotations
 
 import time
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import Any, Callable, Mapping, Optional, Protocol
+from typing import Any, Protocol
 
 import torch
 from torch import nn
@@ -41,8 +42,8 @@ class Context:
     """What a method needs besides its parameters: how the model's output and input read."""
 
     output_kind: str = "softmax"  # "softmax" | "sigmoid": how logits become probabilities
-    normalization: Optional[Normalization] = None  # the spec's mean/std, for "black" baselines
-    baseline_input: Optional[torch.Tensor] = None  # a caller-given reference input (1, C, H, W)
+    normalization: Normalization | None = None  # the spec's mean/std, for "black" baselines
+    baseline_input: torch.Tensor | None = None  # a caller-given reference input (1, C, H, W)
 
 
 class MethodFn(Protocol):
@@ -54,8 +55,8 @@ class MethodFn(Protocol):
         target: int,
         params: dict[str, Any],
         context: Context,
-        progress: Optional[ProgressFn],
-        cancel: Optional[CancelToken],
+        progress: ProgressFn | None,
+        cancel: CancelToken | None,
     ) -> MethodOutput: ...
 
 
@@ -80,11 +81,7 @@ class Method:
     uses_gradients: bool = True
 
     def describe(self) -> dict[str, Any]:
-        defaults = self.schema.validate({})
-        try:
-            cost_224 = float(self.cost(defaults, (224, 224)))
-        except Exception:  # pragma: no cover - a cost formula never fails for defaults
-            cost_224 = None
+        cost_224 = float(self.cost(self.schema.validate({}), (224, 224)))
         return {
             "name": self.name,
             "title": self.title,
@@ -138,13 +135,13 @@ def compute_attribution(
     model: nn.Module,
     x: torch.Tensor,
     *,
-    target: Optional[int] = None,
-    params: Optional[Mapping[str, Any]] = None,
+    target: int | None = None,
+    params: Mapping[str, Any] | None = None,
     output_kind: str = "softmax",
-    normalization: Optional[Normalization] = None,
-    baseline_input: Optional[torch.Tensor] = None,
-    progress: Optional[ProgressFn] = None,
-    cancel: Optional[CancelToken] = None,
+    normalization: Normalization | None = None,
+    baseline_input: torch.Tensor | None = None,
+    progress: ProgressFn | None = None,
+    cancel: CancelToken | None = None,
 ) -> AttributionMap:
     """Run the registered ``method`` on one prepared image.
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Optional
+from typing import Any
 
 import numpy as np
 
@@ -16,7 +16,7 @@ class MethodOutput:
 
     map: np.ndarray  # (H, W) float32 at input resolution
     signed: bool
-    raw: Optional[np.ndarray] = None  # per-channel (C, H, W) values, or a low-resolution map
+    raw: np.ndarray | None = None  # per-channel (C, H, W) values, or a low-resolution map
     n_forwards: int = 0  # images pushed through the model (a batch of 8 counts 8)
     n_backwards: int = 0  # images whose gradient was taken
     resolved: dict[str, Any] = field(default_factory=dict)  # automatic choices, e.g. the layer
@@ -46,11 +46,11 @@ class AttributionMap:
     seconds: float
     n_forwards: int
     n_backwards: int
-    raw: Optional[np.ndarray] = None
+    raw: np.ndarray | None = None
     extras: dict[str, Any] = field(default_factory=dict)
 
     @property
-    def warning(self) -> Optional[str]:
+    def warning(self) -> str | None:
         return self.extras.get("warning")
 
     @property

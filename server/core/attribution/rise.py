@@ -13,9 +13,8 @@ come from one seeded generator in a fixed order, so the map does not depend on t
 from __future__ import annotations
 
 import math
-from typing import Any, Optional
+from typing import Any
 
-import numpy as np
 import torch
 import torch.nn.functional as F
 from torch import nn
@@ -37,7 +36,7 @@ SCHEMA = ParamSchema((
 
 def rise_masks(
     n: int, grid: int, keep: float, size: tuple[int, int], generator: torch.Generator,
-    *, cells: Optional[torch.Tensor] = None, shifts: Optional[torch.Tensor] = None,
+    *, cells: torch.Tensor | None = None, shifts: torch.Tensor | None = None,
 ) -> torch.Tensor:
     """(n, 1, H, W) float masks in [0, 1]; ``cells`` (n, s, s) and ``shifts`` (n, 2) may be given."""
     h, w = size
@@ -58,7 +57,7 @@ def rise_masks(
 
 def _rise(
     model: nn.Module, x: torch.Tensor, *, target: int, params: dict[str, Any], context: Context,
-    progress: Optional[ProgressFn], cancel: Optional[CancelToken],
+    progress: ProgressFn | None, cancel: CancelToken | None,
 ) -> MethodOutput:
     n, s, p = params["masks"], params["grid"], params["keep"]
     h, w = x.shape[-2:]

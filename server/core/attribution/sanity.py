@@ -26,8 +26,9 @@ from __future__ import annotations
 import copy
 import math
 import time
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, Mapping, Optional
+from typing import Any
 
 import numpy as np
 import torch
@@ -53,9 +54,9 @@ class SanityStep:
     index: int
     layers: list[str]
     spearman: float
-    ssim: Optional[float]
+    ssim: float | None
     map: np.ndarray  # (H, W) float32
-    note: Optional[str] = None
+    note: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return {"index": self.index, "layer": self.layers[-1], "layers": list(self.layers),
@@ -86,7 +87,7 @@ class SanityResult:
                 "seconds": self.seconds, "steps": [s.to_dict() for s in self.steps]}
 
 
-def similarity(a: np.ndarray, b: np.ndarray) -> tuple[float, Optional[float], Optional[str]]:
+def similarity(a: np.ndarray, b: np.ndarray) -> tuple[float, float | None, str | None]:
     """(Spearman of |a| vs |b|, SSIM of |a|/max vs |b|/max, note) for two (H, W) maps.
 
     A constant map has no ranking: Spearman is reported as 1.0 when both maps are the same
@@ -152,15 +153,15 @@ def sanity_check(
     model: nn.Module,
     x: torch.Tensor,
     *,
-    target: Optional[int] = None,
-    params: Optional[Mapping[str, Any]] = None,
+    target: int | None = None,
+    params: Mapping[str, Any] | None = None,
     seed: int = 0,
-    max_steps: Optional[int] = None,
+    max_steps: int | None = None,
     output_kind: str = "softmax",
-    normalization: Optional[Normalization] = None,
-    baseline_input: Optional[torch.Tensor] = None,
-    progress: Optional[ProgressFn] = None,
-    cancel: Optional[CancelToken] = None,
+    normalization: Normalization | None = None,
+    baseline_input: torch.Tensor | None = None,
+    progress: ProgressFn | None = None,
+    cancel: CancelToken | None = None,
 ) -> SanityResult:
     """Cascading randomisation of a copy of ``model`` (logits (N, K) for (N, C, H, W) inputs).
 
@@ -184,7 +185,8 @@ def sanity_check(
     if max_steps is not None and max_steps < len(layers):
         groups = [list(g) for g in np.array_split(np.array(layers, dtype=object), max_steps)]
     total = len(groups) + 1
-    kw = dict(output_kind=output_kind, normalization=normalization, baseline_input=baseline_input, cancel=cancel)
+    kw: dict[str, Any] = {"output_kind": output_kind, "normalization": normalization,
+                          "baseline_input": baseline_input, "cancel": cancel}
 
     def sub(k: int):
         if progress is None:

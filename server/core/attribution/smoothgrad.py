@@ -9,7 +9,7 @@ is kept in ``raw``; the map is its largest absolute value over colour channels, 
 
 from __future__ import annotations
 
-from typing import Any, Optional
+from typing import Any
 
 import numpy as np
 import torch
@@ -34,7 +34,7 @@ SCHEMA = ParamSchema((
 
 def _smoothgrad(
     model: nn.Module, x: torch.Tensor, *, target: int, params: dict[str, Any], context: Context,
-    progress: Optional[ProgressFn], cancel: Optional[CancelToken],
+    progress: ProgressFn | None, cancel: CancelToken | None,
 ) -> MethodOutput:
     n, bs = params["samples"], params["batch_size"]
     spread = float(x.max() - x.min())

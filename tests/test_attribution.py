@@ -482,7 +482,7 @@ def test_duplicate_registration_is_a_value_error():
 
 def test_public_surface_is_pinned():
     # common practice, no source: the package's public names are declared once and kept stable.
-    import server.core.attribution as attribution
+    from server.core import attribution
 
     assert sorted(attribution.__all__) == sorted([
         "AttributionMap", "Context", "Curve", "FaithfulnessResult", "Method", "Normalization", "Param",

@@ -11,6 +11,7 @@ from __future__ import annotations
 import hashlib
 import importlib
 import time
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -288,7 +289,9 @@ def _build(spec: ModelSpec, weights: Path | None, *, trust_pickled: bool) -> tup
         return module, True, notes
     if kind == "torchscript":
         try:
-            module = torch.jit.load(str(weights), map_location="cpu")
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", FutureWarning)  # torch's TorchScript deprecation notice
+                module = torch.jit.load(str(weights), map_location="cpu")
         except Exception as exc:  # noqa: BLE001
             raise ModelLoadError(f"{str(weights)!r} is not a readable TorchScript archive: {exc}") from None
         notes.append(

@@ -491,3 +491,10 @@ def test_public_surface_is_pinned():
         "register", "sanity_check",
     ])
     assert all(hasattr(attribution, name) for name in attribution.__all__)
+
+
+def test_float64_image_on_float32_model(cnn, image):
+    # common practice, no source: a double-precision image is cast to the weights' dtype.
+    a = compute_attribution("saliency", cnn, image.double())
+    b = compute_attribution("saliency", cnn, image)
+    np.testing.assert_allclose(a.map, b.map, rtol=1e-6)

@@ -56,6 +56,15 @@ def check_input(x: object) -> torch.Tensor:
         return x.detach().clone()
 
 
+def match_dtype(model: nn.Module, x: torch.Tensor) -> torch.Tensor:
+    """``x`` cast to the dtype of the model's weights (a float64 image on a float32 model)."""
+    p = next(model.parameters(), None)
+    if p is not None and p.is_floating_point() and x.dtype != p.dtype:
+        with torch.inference_mode(False):
+            return x.to(p.dtype)
+    return x
+
+
 def check_output_kind(output_kind: str) -> str:
     if output_kind not in OUTPUT_KINDS:
         raise BadParameterError(

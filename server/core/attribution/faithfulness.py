@@ -35,6 +35,7 @@ from ._common import (
     check_output_kind,
     evaluating,
     logits_of,
+    match_dtype,
     probabilities,
     resolve_target,
 )
@@ -124,7 +125,7 @@ def faithfulness(
     ``target`` defaults to the top-1 class of ``x``; pass the attribution map's own target.
     ``deletion_canvas`` is a (1, C, H, W) tensor (default zeros in input space).
     """
-    x = check_input(x)
+    x = match_dtype(model, check_input(x))
     h, w = x.shape[-2:]
     sal = _check_map(saliency, (h, w))
     output_kind = check_output_kind(output_kind)

@@ -154,7 +154,7 @@ def compute_attribution(
     The model's eval/train flags are restored afterwards; its weights are not modified.
     """
     spec = get_method(method)
-    x = _common.check_input(x)
+    x = _common.match_dtype(model, _common.check_input(x))
     output_kind = _common.check_output_kind(output_kind)
     checked = spec.schema.validate(params, method=spec.name)
     context = Context(output_kind=output_kind, normalization=normalization, baseline_input=baseline_input)

@@ -187,7 +187,7 @@ class TestValidation:
 
     @pytest.mark.parametrize("kw", [
         {"patch": 0}, {"patch": -2}, {"patch": 2.5}, {"patch": math.nan}, {"patch": math.inf}, {"patch": True},
-        {"patch": "4"}, {"patch": 9}, {"stride": 0}, {"stride": 1.5}, {"stride": math.nan}, {"target": 3},
+        {"patch": "4"}, {"patch": 9}, {"stride": 0}, {"stride": 3}, {"stride": 1.5}, {"stride": math.nan}, {"target": 3},
         {"target": -1}, {"target": 1.0}, {"baseline": "grey"}, {"baseline": math.nan},
         {"baseline": torch.zeros(5)}, {"output": "probability"}, {"method": "fast"}, {"batch_size": 0},
         {"refine_tolerance": -1.0},

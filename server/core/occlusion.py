@@ -5,7 +5,8 @@ slide a grey square over the image and record the probability of the class of in
 position. The paper fixes no patch size, stride or grey value; Pellucid's defaults (patch 16,
 stride 8, baseline = the image's own per-channel mean) are our own choice.
 
-Positions. Along each axis the patch's top-left corner takes the values 0, stride, 2·stride, …
+Positions. The stride may not exceed the patch (every pixel must be occluded at least once).
+Along each axis the patch's top-left corner takes the values 0, stride, 2·stride, …
 up to ``size − patch``, plus one last position flush with the far border when ``(size − patch)``
 is not a multiple of the stride, so every pixel is covered by at least one position.
 
@@ -59,7 +60,7 @@ __all__ = [
 MAX_POSITIONS = 65_536
 BASELINES = ("mean", "zero", "blur")
 OUTPUTS = ("softmax", "sigmoid", "logit")
-METHODS = ("auto", "batched", "naive")
+METHODS = ("auto", "batched", "incremental", "naive", "approximate")
 
 # Blur baseline: a Gaussian with sigma = patch / 4 (at least 1 px), so detail at the scale of the
 # patch is removed while colour and coarse shading stay; our own choice, documented in the result.
@@ -358,6 +359,10 @@ def occlusion_map(
         raise BadParameterError(
             f"patch must fit inside the {h}×{w} image (at most {min(h, w)} px); received {patch}."
         )
+    if stride > patch:
+        raise BadParameterError(
+            f"stride must not exceed the patch ({patch} px), or some pixels are never occluded; received {stride}."
+        )
     if output not in OUTPUTS:
         raise BadParameterError(f"output must be one of {OUTPUTS}; received {output!r}.")
     if method not in METHODS:
@@ -396,23 +401,22 @@ def occlusion_map(
         base_score = float(_scores(logits0, target, output)[0])
 
         engine, evaluate, bs, details = _choose_engine(model, x, base, patch, method, batch_size, n_pos)
-        tt = torch.as_tensor(tops)
-        ll = torch.as_tensor(lefts)
         if method == "approximate":
-            from ._approximate import adaptive_grid
+            from ._incremental_approximate import adaptive_grid
 
-            grid_t, top_t, evaluated, n_eval = adaptive_grid(
-                evaluate, tt, ll, stride=stride, batch_size=bs, target=target, output=output,
-                base_score=base_score, tolerance=float(refine_tolerance), progress=progress, cancel=cancel,
+            grid64, top_class, evaluated, n_eval = adaptive_grid(
+                evaluate, torch.as_tensor(tops), torch.as_tensor(lefts),
+                score=lambda lg: _scores(lg, target, output), base_score=base_score, batch_size=bs,
+                tolerance=float(refine_tolerance), progress=progress, cancel=cancel,
             )
-            grid = grid_t.numpy().astype(np.float32)
-            top_class = top_t.numpy()
-            details = {**details, "exact_engine": engine, "refine_tolerance": float(refine_tolerance)}
+            grid = grid64.astype(np.float32)
+            details = {**details, "exact_engine": engine, "refine_tolerance": float(refine_tolerance),
+                       "evaluated_fraction": float(evaluated.mean())}
             engine = "approximate"
             n_forwards = n_eval + 1
         else:
-            ty = tt.repeat_interleave(len(lefts))
-            tx = ll.repeat(len(tops))
+            ty = torch.as_tensor(tops).repeat_interleave(len(lefts))
+            tx = torch.as_tensor(lefts).repeat(len(tops))
             logits = _run_positions(
                 evaluate, ty, tx, bs, done_before=0, total=n_pos, progress=progress, cancel=cancel
             )
@@ -469,7 +473,7 @@ def _choose_engine(
 
         return "naive", naive, batch_size or 1, {}
 
-    if method in ("incremental", "approximate"):
+    if method in ("auto", "incremental", "approximate"):
         from .incremental import IncrementalOcclusion, NotIncremental
 
         try:

@@ -37,6 +37,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version=__version__,
         description="See why an image classifier makes its calls: kernels, feature maps, attribution maps, audits.",
         lifespan=lifespan,
+        docs_url=None,  # the stock pages load scripts from a CDN; routers/docs.py serves an offline one
+        redoc_url=None,
     )
     app.state.settings = settings
     # Autoescape on for every template (Jinja2Templates enables it for .html).
@@ -44,8 +46,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
     install_error_handlers(app)
 
-    from .routers import pages, status
+    from .routers import docs, images, inspect, jobs, models, pages, status
 
     app.include_router(status.router)
+    app.include_router(models.router)
+    app.include_router(images.router)
+    app.include_router(inspect.router)
+    app.include_router(jobs.router)
     app.include_router(pages.router)
+    app.include_router(docs.router)
     return app

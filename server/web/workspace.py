@@ -3,17 +3,99 @@
 from __future__ import annotations
 
 import threading
+import time
 from collections import OrderedDict
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any, Hashable
+
+import numpy as np
 
 from ..core.bundled import bundled_specs
 from ..core.cache import ResultCache
-from ..core.errors import ModelLoadError, NotFoundError, PellucidError
+from ..core.errors import BadParameterError, ModelLoadError, NotFoundError, PellucidError
 from ..core.jobs import JobManager
+from ..core.layers import LayerMap, layer_map
 from ..core.models import LoadedModel, load_model
-from ..core.preprocess import IntakeImage
+from ..core.preprocess import IntakeImage, PreparedInput, prepare
 from ..core.spec import ModelSpec
 from .settings import Settings
+
+
+IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".gif", ".bmp", ".tif", ".tiff", ".webp")
+
+
+@dataclass
+class ResultRecord:
+    """A finished attribution map with what produced it (the cache holds these by result id).
+
+    ``amap`` is the core's AttributionMap; ``display`` is the (H, W, 3) uint8 picture the model saw.
+    """
+
+    id: str
+    model: str
+    fingerprint: str
+    image: str
+    image_name: str
+    method: str
+    title: str
+    target: int
+    target_label: str
+    amap: Any
+    display: np.ndarray
+    created: float = field(default_factory=time.time)
+
+
+class _Lru:
+    """A small thread-safe LRU map (prepared inputs, layer maps)."""
+
+    def __init__(self, limit: int) -> None:
+        self._data: OrderedDict[Hashable, Any] = OrderedDict()
+        self._lock = threading.Lock()
+        self.limit = limit
+
+    def get(self, key: Hashable) -> Any | None:
+        with self._lock:
+            if key in self._data:
+                self._data.move_to_end(key)
+                return self._data[key]
+            return None
+
+    def put(self, key: Hashable, value: Any) -> None:
+        with self._lock:
+            self._data[key] = value
+            self._data.move_to_end(key)
+            while len(self._data) > self.limit:
+                self._data.popitem(last=False)
+
+
+def resolve_inside(root: Path, relative: str) -> Path:
+    """``relative`` resolved under ``root``, refusing anything that would leave it.
+
+    Refuses absolute paths, ``..`` parts, and symlinks (anywhere on the way) that resolve outside
+    the root. Raises BadParameterError with a plain message; NotFoundError when nothing is there.
+    """
+    rel = (relative or "").replace("\\", "/").strip()
+    if rel.startswith("/") or (len(rel) > 1 and rel[1] == ":"):
+        raise BadParameterError(
+            f"folder paths are relative to the image folder; received the absolute path {relative!r}"
+        )
+    parts = [p for p in rel.split("/") if p not in ("", ".")]
+    if any(p == ".." for p in parts):
+        raise BadParameterError(f"'..' is not allowed in folder paths (received {relative!r}); "
+                                "browsing stays inside the image folder")
+    if any("\x00" in p for p in parts):
+        raise BadParameterError("folder paths cannot contain NUL characters")
+    base = root.resolve()
+    target = base.joinpath(*parts)
+    resolved = target.resolve()
+    if resolved != base and base not in resolved.parents:
+        raise BadParameterError(
+            f"{relative!r} leads outside the image folder (through a symbolic link); it is refused"
+        )
+    if not resolved.exists():
+        raise NotFoundError(f"nothing called {relative!r} in the image folder")
+    return resolved
 
 
 class Workspace:
@@ -27,6 +109,8 @@ class Workspace:
         self._image_lock = threading.Lock()
         self.jobs = JobManager(workers=settings.job_workers)
         self.cache = ResultCache(max_entries=settings.max_cached_results)
+        self._prepared = _Lru(limit=max(8, settings.max_images))
+        self._layer_maps = _Lru(limit=16)
         self._collect_specs()
 
     def _collect_specs(self) -> None:
@@ -76,6 +160,10 @@ class Workspace:
                 self._images.popitem(last=False)
         return image.sha256
 
+    def images(self) -> list[IntakeImage]:
+        with self._image_lock:
+            return list(reversed(self._images.values()))
+
     def image(self, sha256: str) -> IntakeImage:
         with self._image_lock:
             img = self._images.get(sha256)
@@ -84,6 +172,40 @@ class Workspace:
                 f"no image with id {sha256[:16]!r} on this server (it may have expired); upload it again"
             )
         return img
+
+    def prepared(self, model: LoadedModel, image_id: str) -> PreparedInput:
+        """The image as ``model`` sees it (preprocessed once per model and image)."""
+        key = (model.name, model.fingerprint, image_id)
+        hit = self._prepared.get(key)
+        if hit is None:
+            hit = prepare(model.spec, self.image(image_id))
+            self._prepared.put(key, hit)
+        return hit
+
+    def layer_map(self, model: LoadedModel) -> LayerMap:
+        """The model's layer map (one dry run per model, then cached)."""
+        key = (model.name, model.fingerprint)
+        hit = self._layer_maps.get(key)
+        if hit is None:
+            hit = layer_map(model.module, input_shape=model.input_shape)
+            self._layer_maps.put(key, hit)
+        return hit
+
+    def samples_dir(self, name: str) -> Path | None:
+        """The demo samples folder shipped beside a model's spec, if it has one."""
+        if name not in self.specs:
+            known = ", ".join(self.specs) or "none"
+            raise NotFoundError(f"no model named {name!r} on this server; models: {known}")
+        folder = self.specs[name].base_dir / "samples"
+        return folder if folder.is_dir() else None
+
+    def result(self, result_id: str) -> ResultRecord:
+        record = self.cache.get(result_id)
+        if record is None:
+            raise NotFoundError(
+                f"no result with id {result_id[:24]!r} on this server (it may have expired); run the method again"
+            )
+        return record
 
     def close(self) -> None:
         self.jobs.shutdown()

@@ -1,0 +1,213 @@
+"""Images: upload, the browsable image folder, the demo samples, the input as a model sees it."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+from fastapi import APIRouter, Depends, Query, Request
+from starlette.concurrency import run_in_threadpool
+from starlette.datastructures import UploadFile
+
+from ...core import render
+from ...core.errors import BadParameterError, ImageDecodeError, ImageTooLargeError, NotFoundError
+from ...core.preprocess import IntakeImage, read_image
+from ..deps import get_settings, get_workspace
+from ..schemas import (
+    FolderEntry,
+    FolderListing,
+    ImageInfo,
+    OpenFromFolder,
+    OpenSample,
+    PreparedView,
+    SampleEntry,
+    SampleList,
+)
+from ..settings import Settings
+from ..workspace import IMAGE_SUFFIXES, Workspace, resolve_inside
+from ._media import data_url
+
+router = APIRouter(prefix="/api", tags=["images"])
+
+# Room for the multipart boundary and headers around the file itself.
+_MULTIPART_SLACK = 64 * 1024
+_MAX_LISTING = 500
+
+
+def image_info(img: IntakeImage) -> ImageInfo:
+    return ImageInfo(
+        id=img.sha256, name=img.name, original_size=list(img.original_size), original_mode=img.original_mode,
+        format=img.format, notes=list(img.notes),
+    )
+
+
+def _too_big(received: int | None, limit: int) -> ImageTooLargeError:
+    what = f"{received / 1e6:.1f} MB" if received is not None else "more than the limit"
+    return ImageTooLargeError(
+        f"the upload is {what}, over the limit of {limit / 1e6:.1f} MB; send a smaller image "
+        "(or start the server with a larger upload limit)"
+    )
+
+
+_UPLOAD_DOC = {
+    "requestBody": {
+        "required": True,
+        "content": {
+            "multipart/form-data": {
+                "schema": {
+                    "type": "object",
+                    "required": ["file"],
+                    "properties": {"file": {"type": "string", "format": "binary"}},
+                }
+            }
+        },
+    }
+}
+
+
+@router.post("/images", response_model=ImageInfo, summary="Upload an image (multipart field 'file')",
+             openapi_extra=_UPLOAD_DOC)
+async def upload_image(
+    request: Request, ws: Workspace = Depends(get_workspace), settings: Settings = Depends(get_settings)
+) -> ImageInfo:
+    limit = settings.max_upload_bytes
+    ctype = request.headers.get("content-type", "")
+    if not ctype.startswith("multipart/form-data"):
+        raise ImageDecodeError(
+            f"uploads are sent as multipart/form-data with the image in a field named 'file'; received "
+            f"content type {ctype or 'none'!r}"
+        )
+    declared = request.headers.get("content-length")
+    if declared is not None and declared.isdigit() and int(declared) > limit + _MULTIPART_SLACK:
+        raise _too_big(int(declared), limit)
+    # Count while reading, so a body without (or with a false) length still stops at the limit.
+    body = bytearray()
+    async for chunk in request.stream():
+        body += chunk
+        if len(body) > limit + _MULTIPART_SLACK:
+            raise _too_big(None, limit)
+    request._body = bytes(body)  # Starlette's form parser reads the buffered body from here
+    form = await request.form(max_files=1, max_fields=8)
+    try:
+        upload = form.get("file")
+        if not isinstance(upload, UploadFile):
+            raise ImageDecodeError("the upload has no file in a field named 'file'; choose an image and send it again")
+        data = await upload.read()
+        name = Path(upload.filename or "upload").name or "upload"
+    finally:
+        await form.close()
+    if len(data) > limit:
+        raise _too_big(len(data), limit)
+    img = await run_in_threadpool(read_image, data, name=name, max_bytes=limit, max_pixels=settings.max_pixels)
+    ws.add_image(img)
+    return image_info(img)
+
+
+@router.get("/images", response_model=list[ImageInfo], summary="Images this server holds now, newest first")
+def list_images(ws: Workspace = Depends(get_workspace)) -> list[ImageInfo]:
+    return [image_info(img) for img in ws.images()]
+
+
+@router.get("/images/{image_id}", response_model=ImageInfo, summary="What the server knows about an image")
+def get_image(image_id: str, ws: Workspace = Depends(get_workspace)) -> ImageInfo:
+    return image_info(ws.image(image_id))
+
+
+@router.get("/images/{image_id}/prepared", response_model=PreparedView,
+            summary="The image exactly as a model sees it, with every conversion note")
+def get_prepared(image_id: str, model: str | None = Query(None), ws: Workspace = Depends(get_workspace)
+                 ) -> PreparedView:
+    lm = ws.model(model)
+    prep = ws.prepared(lm, image_id)
+    return PreparedView(
+        image=image_id, model=lm.name, png=data_url(render.encode_png(prep.display)),
+        size=list(prep.display.shape[:2]), notes=list(prep.notes),
+    )
+
+
+def _root(settings: Settings) -> Path:
+    if settings.image_root is None:
+        raise NotFoundError("this server was started without an image folder; start it with --images FOLDER")
+    root = Path(settings.image_root)
+    if not root.is_dir():
+        raise NotFoundError(f"the image folder {str(root)!r} given at start is not a folder")
+    return root
+
+
+@router.get("/folder", response_model=FolderListing, summary="Browse the image folder given at start")
+def browse_folder(path: str = Query("", description="sub-folder, relative to the image folder"),
+                  settings: Settings = Depends(get_settings)) -> FolderListing:
+    root = _root(settings)
+    where = resolve_inside(root, path)
+    if not where.is_dir():
+        raise BadParameterError(f"{path!r} is a file, not a folder; open it with POST /api/folder/open")
+    base = root.resolve()
+    entries: list[FolderEntry] = []
+    truncated = False
+    for child in sorted(where.iterdir(), key=lambda p: (not p.is_dir(), p.name.lower())):
+        if child.name.startswith("."):
+            continue
+        try:
+            real = child.resolve()
+        except OSError:
+            continue
+        if real != base and base not in real.parents:
+            continue  # a symlink leading out of the folder is not offered
+        rel = child.relative_to(where).as_posix()
+        rel = f"{where.relative_to(base).as_posix()}/{rel}" if where != base else rel
+        if real.is_dir():
+            entries.append(FolderEntry(name=child.name, path=rel, kind="folder"))
+        elif real.is_file() and child.suffix.lower() in IMAGE_SUFFIXES:
+            entries.append(FolderEntry(name=child.name, path=rel, kind="image", size=real.stat().st_size))
+        if len(entries) >= _MAX_LISTING:
+            truncated = True
+            break
+    rel_here = "" if where == base else where.relative_to(base).as_posix()
+    parent = None if where == base else ("" if where.parent == base else where.parent.relative_to(base).as_posix())
+    return FolderListing(root_name=root.name, path=rel_here, parent=parent, entries=entries, truncated=truncated)
+
+
+@router.post("/folder/open", response_model=ImageInfo, summary="Open an image from the image folder")
+def open_from_folder(body: OpenFromFolder, ws: Workspace = Depends(get_workspace),
+                     settings: Settings = Depends(get_settings)) -> ImageInfo:
+    where = resolve_inside(_root(settings), body.path)
+    if not where.is_file():
+        raise BadParameterError(f"{body.path!r} is a folder, not an image")
+    img = read_image(where, max_bytes=settings.max_upload_bytes, max_pixels=settings.max_pixels)
+    ws.add_image(img)
+    return image_info(img)
+
+
+def _sample_files(folder: Path) -> list[Path]:
+    return sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in IMAGE_SUFFIXES)
+
+
+@router.get("/samples", response_model=SampleList, summary="Demo images shipped beside a model's spec")
+def list_samples(model: str | None = Query(None), ws: Workspace = Depends(get_workspace),
+                 settings: Settings = Depends(get_settings)) -> SampleList:
+    name = model or ws.default_model
+    folder = ws.samples_dir(name)
+    samples = []
+    for path in (_sample_files(folder) if folder else [])[:48]:
+        try:
+            img = read_image(path, max_bytes=settings.max_upload_bytes, max_pixels=settings.max_pixels)
+        except ImageDecodeError:
+            continue
+        thumb = img.pil.convert("RGB")
+        thumb.thumbnail((96, 96))
+        samples.append(SampleEntry(name=path.name, thumbnail=data_url(render.encode_png(np.asarray(thumb)))))
+    return SampleList(model=name, samples=samples)
+
+
+@router.post("/samples/open", response_model=ImageInfo, summary="Open one of a model's demo images")
+def open_sample(body: OpenSample, ws: Workspace = Depends(get_workspace),
+                settings: Settings = Depends(get_settings)) -> ImageInfo:
+    folder = ws.samples_dir(body.model)
+    if folder is None:
+        raise NotFoundError(f"model {body.model!r} ships no demo samples")
+    where = resolve_inside(folder, body.name)
+    if not where.is_file():
+        raise BadParameterError(f"{body.name!r} is not an image file")
+    img = read_image(where, max_bytes=settings.max_upload_bytes, max_pixels=settings.max_pixels)
+    ws.add_image(img)
+    return image_info(img)

@@ -1,0 +1,211 @@
+"""Attribution maps as jobs: list the methods, start / poll / cancel a job, fetch its result.
+
+A job runs on the workspace's job pool (never on the event loop). Its result is cached by
+(model fingerprint, image sha256, method, validated parameters + target), so asking again for
+the same map is served at once.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+
+import numpy as np
+from fastapi import APIRouter, Depends, Query
+from fastapi.responses import Response
+
+from ...core import render
+from ...core.attribution import Normalization, compute_attribution, get_method, list_methods
+from ...core.cache import result_key
+from ...core.errors import BadParameterError, NotFoundError
+from ...core.jobs import Job
+from ...core.models import LoadedModel
+from ...core.probe import find_layer
+from ..deps import get_workspace
+from ..schemas import CAUTION, JobRequest, JobStatus, MethodList, ResultResponse, SharedScale
+from ..workspace import ResultRecord, Workspace
+from ._media import data_url, rounded_rows
+
+router = APIRouter(prefix="/api", tags=["attribution"])
+
+
+@router.get("/methods", response_model=MethodList, summary="The registered attribution methods and their parameters")
+def get_methods() -> MethodList:
+    methods = list_methods()
+    for m in methods:
+        if m["name"] == "occlusion":
+            from ...core.occlusion import METHODS as ENGINES
+
+            for p in m["params"]:
+                if p["name"] == "engine":
+                    p["suggestions"] = list(ENGINES)
+    return MethodList(methods=methods)
+
+
+def _check_geometry(lm: LoadedModel, params: dict) -> None:
+    """Patch and stride must fit the model's input; caught here so the error is a 4xx, not a failed job."""
+    h, w = lm.spec.input.height, lm.spec.input.width
+    for name in ("patch", "stride"):
+        value = params.get(name)
+        if isinstance(value, int) and value > min(h, w):
+            raise BadParameterError(
+                f"{name} {value} px is larger than the model's {h}×{w} input; use at most {min(h, w)} px"
+            )
+
+
+def _check_layer(lm: LoadedModel, params: dict) -> None:
+    layer = params.get("layer")
+    if layer:
+        find_layer(lm.module, layer)
+
+
+def _result_id(key: tuple) -> str:
+    return hashlib.sha256(json.dumps(key).encode()).hexdigest()[:24]
+
+
+def job_status(job: Job, *, cached: bool = False) -> JobStatus:
+    d = job.to_dict()
+    return JobStatus(
+        id=d["id"], kind=d["kind"], description=d["description"], state=d["state"], done=d["done"],
+        total=d["total"], fraction=d["fraction"], seconds_left=d["seconds_left"], elapsed=d["elapsed"],
+        error=d["error"], result_id=job.meta.get("result_id") if job.state == "done" else None, cached=cached,
+    )
+
+
+@router.post("/jobs", response_model=JobStatus, status_code=202,
+             summary="Start an attribution map (occlusion or any registered method) as a job")
+def start_job(body: JobRequest, ws: Workspace = Depends(get_workspace)) -> JobStatus:
+    lm = ws.model(body.model)
+    method = get_method(body.method)
+    params = method.schema.validate(body.params, method=method.name)
+    _check_geometry(lm, params)
+    _check_layer(lm, params)
+    image = ws.image(body.image)
+    prep = ws.prepared(lm, body.image)
+    if body.target is None or body.target == "":
+        with_target = None
+    else:
+        with_target = lm.class_index(body.target)
+    key = result_key(model=lm.fingerprint, image=image.sha256, method=method.name,
+                     params={**params, "target": with_target})
+    rid = _result_id(key)
+    description = f"{method.title} · {lm.name} · {image.name}"
+    meta = {"result_id": rid, "model": lm.name, "image": image.sha256, "method": method.name}
+    if ws.cache.get(rid) is not None:
+        job = ws.jobs.submit(method.name, lambda progress, cancel: rid, description=description, meta=meta)
+        return job_status(job, cached=True)
+    spec = lm.spec
+    normalization = Normalization.of(spec.preprocess.mean, spec.preprocess.std)
+
+    def run(progress, cancel) -> str:
+        amap = compute_attribution(
+            method.name, lm.module, prep.tensor, target=with_target, params=params,
+            output_kind=lm.output_kind, normalization=normalization, progress=progress, cancel=cancel,
+        )
+        ws.cache.put(rid, ResultRecord(
+            id=rid, model=lm.name, fingerprint=lm.fingerprint, image=image.sha256, image_name=image.name,
+            method=method.name, title=method.title, target=amap.target, target_label=lm.labels[amap.target],
+            amap=amap, display=prep.display,
+        ))
+        return rid
+
+    job = ws.jobs.submit(method.name, run, description=description, meta=meta)
+    return job_status(job)
+
+
+def _job(ws: Workspace, job_id: str) -> Job:
+    job = ws.jobs.get(job_id)
+    if job is None:
+        raise NotFoundError(f"no job with id {job_id[:24]!r} on this server; start one with POST /api/jobs")
+    return job
+
+
+@router.get("/jobs/{job_id}", response_model=JobStatus, summary="Poll a job: state, progress, time left")
+def poll_job(job_id: str, ws: Workspace = Depends(get_workspace)) -> JobStatus:
+    return job_status(_job(ws, job_id))
+
+
+@router.post("/jobs/{job_id}/cancel", response_model=JobStatus, summary="Ask a job to stop")
+def cancel_job(job_id: str, ws: Workspace = Depends(get_workspace)) -> JobStatus:
+    _job(ws, job_id)
+    return job_status(ws.jobs.cancel(job_id))
+
+
+def _value_label(record: ResultRecord) -> str:
+    if record.method == "occlusion":
+        kind = record.amap.params.get("output", None)
+        return f"drop in the probability of '{record.target_label}' when this area is hidden" if kind != "logit" \
+            else f"drop in the score of '{record.target_label}'"
+    return f"{record.title} attribution for '{record.target_label}'"
+
+
+def _scale(record: ResultRecord, vmin: float | None, vmax: float | None) -> tuple[float, float]:
+    lo, hi = render.value_range(record.amap.map, signed=record.amap.signed)
+    lo = lo if vmin is None else vmin
+    hi = hi if vmax is None else vmax
+    if not hi > lo:
+        raise BadParameterError(f"the colour scale needs vmin < vmax; received vmin={lo}, vmax={hi}")
+    return lo, hi
+
+
+def _cmap(record: ResultRecord) -> str:
+    return render.SIGNED_CMAP if record.amap.signed else render.MAGNITUDE_CMAP
+
+
+@router.get("/results/{result_id}", response_model=ResultResponse,
+            summary="A finished map: picture, map, colour bar with numbers, raw values, engine that ran")
+def get_result(
+    result_id: str,
+    vmin: float | None = Query(None, description="lower end of the colour scale (for a shared scale)"),
+    vmax: float | None = Query(None, description="upper end of the colour scale"),
+    ws: Workspace = Depends(get_workspace),
+) -> ResultResponse:
+    record = ws.result(result_id)
+    amap = record.amap
+    lo, hi = _scale(record, vmin, vmax)
+    cmap = _cmap(record)
+    coloured = render.colorize(amap.map, cmap=cmap, vmin=lo, vmax=hi)
+    label = _value_label(record)
+    extras = {k: v for k, v in amap.extras.items() if isinstance(v, (str, int, float, bool, type(None), list, dict))}
+    return ResultResponse(
+        id=record.id, model=record.model, fingerprint=record.fingerprint, image=record.image,
+        image_name=record.image_name, method=record.method, title=record.title, target=record.target,
+        target_label=record.target_label, target_source=amap.target_source, signed=amap.signed,
+        engine=amap.extras.get("engine"), approximate=amap.extras.get("engine") == "approximate",
+        params=amap.params, extras=extras, warning=amap.warning, seconds=amap.seconds,
+        n_forwards=amap.n_forwards, n_backwards=amap.n_backwards, value_label=label, vmin=lo, vmax=hi, cmap=cmap,
+        image_png=data_url(render.encode_png(record.display)), map_png=data_url(render.encode_png(coloured)),
+        colorbar=data_url(render.colorbar_png(vmin=lo, vmax=hi, cmap=cmap, label=label[:80])),
+        values=rounded_rows(amap.map, digits=4), caution=CAUTION,
+    )
+
+
+@router.get("/results/{result_id}/overlay.png", response_class=Response,
+            responses={200: {"content": {"image/png": {}}}},
+            summary="The map blended over the image, as one PNG")
+def get_overlay(
+    result_id: str,
+    opacity: float = Query(0.55, ge=0.0, le=1.0),
+    vmin: float | None = Query(None),
+    vmax: float | None = Query(None),
+    ws: Workspace = Depends(get_workspace),
+) -> Response:
+    record = ws.result(result_id)
+    lo, hi = _scale(record, vmin, vmax)
+    picture = render.overlay(record.display, record.amap.map, alpha=opacity, cmap=_cmap(record), vmin=lo, vmax=hi)
+    return Response(render.encode_png(picture), media_type="image/png")
+
+
+@router.get("/scale", response_model=SharedScale, summary="One colour scale shared by several maps")
+def shared_scale(results: list[str] = Query(..., description="result ids"),
+                 ws: Workspace = Depends(get_workspace)) -> SharedScale:
+    records = [ws.result(r) for r in results]
+    signed = {r.amap.signed for r in records}
+    if len(signed) > 1:
+        raise BadParameterError(
+            "cannot put a signed map and an unsigned map on one colour scale; compare maps of the same kind"
+        )
+    is_signed = signed.pop()
+    stacked = np.concatenate([r.amap.map.ravel() for r in records])
+    lo, hi = render.value_range(stacked, signed=is_signed)
+    return SharedScale(results=list(results), signed=is_signed, vmin=lo, vmax=hi)

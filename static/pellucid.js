@@ -1,0 +1,173 @@
+// Shared helpers for Pellucid's pages: JSON API calls, small DOM builders, number formats.
+"use strict";
+
+const P = (() => {
+  async function api(path, options = {}) {
+    const opts = { ...options, headers: { ...(options.headers || {}) } };
+    if (opts.json !== undefined) {
+      opts.body = JSON.stringify(opts.json);
+      opts.headers["Content-Type"] = "application/json";
+      opts.method = opts.method || "POST";
+      delete opts.json;
+    }
+    let response;
+    try {
+      response = await fetch(path, opts);
+    } catch (err) {
+      throw new Error("the server did not answer (" + err.message + "); is it still running?");
+    }
+    let body = null;
+    const text = await response.text();
+    try { body = text ? JSON.parse(text) : null; } catch (_) { body = null; }
+    if (!response.ok) {
+      const detail = body && body.detail ? body.detail : (text || response.statusText);
+      const error = new Error(typeof detail === "string" ? detail : JSON.stringify(detail));
+      error.status = response.status;
+      throw error;
+    }
+    return body;
+  }
+
+  function el(tag, attrs = {}, children = []) {
+    const node = document.createElement(tag);
+    for (const [key, value] of Object.entries(attrs)) {
+      if (value === undefined || value === null || value === false) continue;
+      if (key === "text") node.textContent = value;
+      else if (key === "class") node.className = value;
+      else if (key.startsWith("on")) node.addEventListener(key.slice(2), value);
+      else if (key === "dataset") Object.assign(node.dataset, value);
+      else node.setAttribute(key, value === true ? "" : value);
+    }
+    for (const child of [].concat(children)) {
+      if (child === null || child === undefined) continue;
+      node.append(child instanceof Node ? child : document.createTextNode(String(child)));
+    }
+    return node;
+  }
+
+  function $(selector, root = document) { return root.querySelector(selector); }
+
+  function clear(node) { while (node.firstChild) node.removeChild(node.firstChild); return node; }
+
+  function fmtInt(n) { return n === null || n === undefined ? "—" : Number(n).toLocaleString("en-US"); }
+
+  function fmt(x, digits = 3) {
+    if (x === null || x === undefined || Number.isNaN(x)) return "—";
+    const a = Math.abs(x);
+    if (a !== 0 && (a < 1e-3 || a >= 1e5)) return x.toExponential(digits - 1);
+    return x.toFixed(digits);
+  }
+
+  function fmtSeconds(s) {
+    if (s === null || s === undefined) return "—";
+    if (s < 1) return (s * 1000).toFixed(0) + " ms";
+    if (s < 90) return s.toFixed(1) + " s";
+    return Math.round(s / 60) + " min";
+  }
+
+  function showError(node, message) {
+    node.textContent = message || "";
+    node.hidden = !message;
+  }
+
+  function fillSelect(select, items, selected) {
+    clear(select);
+    for (const item of items) {
+      const [value, label] = Array.isArray(item) ? item : [item, item];
+      const option = el("option", { value, text: label });
+      if (String(value) === String(selected)) option.selected = true;
+      select.append(option);
+    }
+  }
+
+  // Report the value under the pointer for a (rows × cols) array drawn over an element.
+  function hoverReadout(target, getValues, onValue) {
+    function at(event) {
+      const values = getValues();
+      if (!values || !values.length) return;
+      const box = target.getBoundingClientRect();
+      const fx = (event.clientX - box.left) / box.width;
+      const fy = (event.clientY - box.top) / box.height;
+      if (fx < 0 || fy < 0 || fx >= 1 || fy >= 1) return;
+      const row = Math.min(values.length - 1, Math.floor(fy * values.length));
+      const col = Math.min(values[0].length - 1, Math.floor(fx * values[0].length));
+      onValue(row, col, values[row][col]);
+    }
+    target.addEventListener("mousemove", at);
+    target.addEventListener("mouseleave", () => onValue(null, null, null));
+  }
+
+  // Poll a job until it finishes; onProgress gets each status.
+  async function followJob(jobId, onProgress, intervalMs = 150) {
+    for (;;) {
+      const status = await api("/api/jobs/" + encodeURIComponent(jobId));
+      onProgress(status);
+      if (["done", "failed", "cancelled"].includes(status.state)) return status;
+      await new Promise((resolve) => setTimeout(resolve, intervalMs));
+    }
+  }
+
+  function progressText(status, unit = "steps") {
+    if (status.state === "queued") return "waiting for a free worker…";
+    if (status.state === "running") {
+      const parts = [];
+      if (status.total) parts.push(`${fmtInt(status.done)} of ${fmtInt(status.total)} ${unit}`);
+      else parts.push("starting…");
+      if (status.seconds_left !== null && status.seconds_left !== undefined) {
+        parts.push("about " + fmtSeconds(status.seconds_left) + " left");
+      }
+      return parts.join(" · ");
+    }
+    if (status.state === "done") return `finished in ${fmtSeconds(status.elapsed)}` + (status.cached ? " (from the result cache)" : "");
+    if (status.state === "cancelled") return `cancelled after ${fmtSeconds(status.elapsed)}`;
+    return "failed: " + (status.error || "unknown error");
+  }
+
+  // Form inputs for a method's parameter schema (from GET /api/methods).
+  function paramInputs(container, method, overrides = {}) {
+    clear(container);
+    for (const p of method.params) {
+      const id = "param-" + p.name;
+      let input;
+      const value = overrides[p.name] !== undefined ? overrides[p.name] : p.default;
+      if (p.type === "choice") {
+        input = el("select", { id, name: p.name });
+        fillSelect(input, p.choices, value);
+      } else if (p.type === "int" || p.type === "float") {
+        input = el("input", {
+          id, name: p.name, type: "number", step: p.type === "int" ? "1" : "any",
+          min: p.min === null ? undefined : p.min, max: p.max === null ? undefined : p.max,
+          value: value === null ? "" : value,
+        });
+      } else {
+        input = el("input", { id, name: p.name, type: "text", value: value === null ? "" : value, placeholder: value === null ? "automatic" : "" });
+        if (p.suggestions && p.suggestions.length) {
+          const list = el("datalist", { id: id + "-choices" }, p.suggestions.map((s) => el("option", { value: s })));
+          input.setAttribute("list", list.id);
+          container.append(list);
+        }
+      }
+      input.title = p.help + " (" + p.allowed + ")";
+      container.append(el("label", { for: id }, [p.name.replace(/_/g, " "), input]));
+    }
+  }
+
+  function readParams(container, method) {
+    const out = {};
+    for (const p of method.params) {
+      const input = container.querySelector(`[name="${p.name}"]`);
+      if (!input) continue;
+      const raw = input.value.trim();
+      if (raw === "") continue;
+      out[p.name] = p.type === "int" ? Number.parseInt(raw, 10) : p.type === "float" ? Number.parseFloat(raw) : raw;
+      if ((p.type === "int" || p.type === "float") && Number.isNaN(out[p.name])) out[p.name] = raw;
+    }
+    return out;
+  }
+
+  function remember(key, value) { try { localStorage.setItem("pellucid." + key, value); } catch (_) { /* private mode */ } }
+  function recall(key) { try { return localStorage.getItem("pellucid." + key); } catch (_) { return null; } }
+
+  return { api, el, $, clear, fmt, fmtInt, fmtSeconds, showError, fillSelect, hoverReadout, followJob,
+           progressText, paramInputs, readParams, remember, recall };
+})();

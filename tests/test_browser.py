@@ -1,0 +1,207 @@
+"""The dashboard in a real browser: Debian's Chromium driven by Playwright against a live uvicorn.
+
+Run with ``pytest -m browser tests/test_browser.py``. Screenshots land in
+test-artifacts/screenshots/ (git-ignored) for a person to look at.
+"""
+
+from __future__ import annotations
+
+import socket
+import threading
+import time
+from pathlib import Path
+from typing import Iterator
+
+import pytest
+
+from conftest import png_bytes, synthetic_tile, write_tiny_spec
+
+CHROMIUM = Path("/usr/bin/chromium")
+CHROMIUM_ARGS = [
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--no-first-run",
+]
+SCREENSHOTS = Path(__file__).resolve().parents[1] / "test-artifacts" / "screenshots"
+BROWSER_SIZE = 64  # input side of the browser tests' tiny model: big enough to see, small enough to be quick
+
+pytestmark = [
+    pytest.mark.browser,
+    pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's Chromium is not installed at /usr/bin/chromium "
+                       "(apt-get install chromium)"),
+]
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture(scope="module")
+def live_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    """A real uvicorn server on 127.0.0.1 and a free port, in a thread; stopped at the end."""
+    import uvicorn
+
+    from server.web.app import create_app
+    from server.web.settings import Settings
+
+    base = tmp_path_factory.mktemp("browser")
+    spec = write_tiny_spec(base / "tilelike", name="tilelike", size=BROWSER_SIZE)
+    images = base / "images"
+    images.mkdir()
+    (images / "tagged-corner.png").write_bytes(png_bytes(synthetic_tile(seed=5, size=BROWSER_SIZE, tagged=True)))
+    settings = Settings(models=(str(spec),), include_bundled=False, image_root=images, data_dir=base / "data")
+    port = _free_port()
+    config = uvicorn.Config(create_app(settings), host="127.0.0.1", port=port, log_level="warning", lifespan="on")
+    server = uvicorn.Server(config)
+    thread = threading.Thread(target=server.run, daemon=True)
+    thread.start()
+    deadline = time.time() + 30
+    while not server.started:
+        if time.time() > deadline or not thread.is_alive():
+            raise RuntimeError("uvicorn did not start within 30 s")
+        time.sleep(0.05)
+    try:
+        yield f"http://127.0.0.1:{port}"
+    finally:
+        server.should_exit = True
+        thread.join(timeout=30)
+
+
+@pytest.fixture(scope="module")
+def browser():
+    from playwright.sync_api import sync_playwright
+
+    with sync_playwright() as pw:
+        b = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
+        try:
+            yield b
+        finally:
+            b.close()
+
+
+@pytest.fixture()
+def page(browser):
+    context = browser.new_context(viewport={"width": 1280, "height": 900})
+    p = context.new_page()
+    p.set_default_timeout(30_000)
+    yield p
+    context.close()
+
+
+def _shot(page, name: str) -> None:
+    SCREENSHOTS.mkdir(parents=True, exist_ok=True)
+    page.screenshot(path=str(SCREENSHOTS / f"{name}.png"), full_page=True)
+
+
+@pytest.fixture(scope="module")
+def demo_tile(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A tile image file to upload: a shipped demo sample when there is one, else a synthetic tile."""
+    shipped = sorted((Path(__file__).resolve().parents[1] / "demo_models" / "tilenet" / "samples").glob("*.png"))
+    if shipped:
+        return shipped[0]
+    path = tmp_path_factory.mktemp("upload") / "tile.png"
+    path.write_bytes(png_bytes(synthetic_tile(seed=7, size=96, tagged=True)))
+    return path
+
+
+def test_model_page_shows_kernel_grid_and_layer_map(live_server: str, page) -> None:
+    page.goto(live_server + "/model")
+    page.wait_for_function("document.body.dataset.ready === 'true'")
+    grid = page.locator("#kernel-grid")
+    grid.wait_for(state="visible")
+    assert page.evaluate("document.querySelector('#kernel-grid').naturalWidth") > 0
+    assert page.locator("#kernel-layer").input_value() == "features.conv1"
+    rows = page.locator("#layer-table tbody tr")
+    assert rows.count() >= 6
+    foot = page.locator("#layer-table tfoot").inner_text()
+    # 3·8·9+8 + 8·16·9+16 + 16·4+4 = 1,460 parameters in the tiny net (counted by hand from its definition).
+    assert "1,460" in foot
+    assert page.locator("#model-fingerprint").inner_text().strip()
+    # Another conv layer on request: the per-channel grid with its colour bar.
+    page.select_option("#kernel-layer", "features.conv2")
+    page.wait_for_function("document.querySelector('#kernel-grid').dataset.layer === 'features.conv2'")
+    assert page.locator("#kernel-colorbar").is_visible()
+    _shot(page, "model-anatomy")
+
+
+def test_image_page_evidence_flow(live_server: str, page, demo_tile: Path) -> None:
+    page.goto(live_server + "/image")
+    page.wait_for_function("document.body.dataset.ready === 'true'")
+    page.set_input_files("#file-input", str(demo_tile))
+
+    # Top-k as labelled bars with numbers.
+    page.locator("#topk li").first.wait_for()
+    labels = page.locator("#topk .bar-label").all_inner_texts()
+    assert set(labels) <= {"sound", "crack", "chip", "bubble"} and len(labels) == 4
+    values = page.locator("#topk .bar-value").all_inner_texts()
+    assert all(v.endswith("%") for v in values)
+    assert abs(sum(float(v.rstrip("%")) for v in values) - 100.0) < 0.5  # softmax over all 4 classes
+    # What the model was given is stated beside the picture.
+    page.wait_for_function("document.querySelector('#image-size').innerText.includes('model input 64×64')")
+
+    # Pick a layer and see its grid; open one channel.
+    page.select_option("#layer-select", "features.conv1")
+    page.wait_for_function("document.querySelector('#act-grid').dataset.layer === 'features.conv1'")
+    page.wait_for_function("document.querySelector('#act-grid').complete && "
+                           "document.querySelector('#act-grid').naturalWidth > 0")
+    box = page.locator("#act-grid").bounding_box()
+    page.mouse.click(box["x"] + 6, box["y"] + 6)  # inside the first cell
+    page.locator("#channel-view").wait_for(state="visible")
+    assert "channel" in page.locator("#channel-title").inner_text()
+    cbox = page.locator("#channel-stack").bounding_box()
+    page.mouse.move(cbox["x"] + cbox["width"] / 2, cbox["y"] + cbox["height"] / 2)
+    page.wait_for_function("document.querySelector('#channel-readout').innerText.includes('activation')")
+    _shot(page, "image-features")
+
+    # Occlusion: progress reaches the end, the heatmap appears, the engine is named.
+    page.select_option("#method-select", "occlusion")
+    page.fill("#param-patch", "16")
+    page.fill("#param-stride", "8")
+    page.click("#run-button")
+    page.wait_for_function("document.querySelector('#job-box').dataset.state === 'done'")
+    assert page.evaluate("document.querySelector('#job-bar').value") == 1
+    page.locator("#result-view").wait_for(state="visible")
+    assert page.locator("#result-engine").inner_text().strip()
+    assert page.locator("#result-map").get_attribute("src").startswith("data:image/png")
+    rbox = page.locator("#result-stack").bounding_box()
+    page.mouse.move(rbox["x"] + rbox["width"] * 0.8, rbox["y"] + rbox["height"] * 0.8)
+    page.wait_for_function("document.querySelector('#result-readout').innerText.includes('probability drop')")
+    page.fill("#result-opacity", "0.3")
+    page.dispatch_event("#result-opacity", "input")
+    assert page.evaluate("document.querySelector('#result-map').style.opacity") == "0.3"
+    assert page.locator("#evidence .caution").is_visible()
+    _shot(page, "image-occlusion")
+
+    # A slow second run (every pixel a position, brute force), cancelled while it runs.
+    page.fill("#param-patch", "2")
+    page.fill("#param-stride", "1")
+    page.fill("#param-engine", "batched")
+    page.click("#run-button")
+    page.wait_for_function("document.querySelector('#job-box').dataset.state === 'running' && "
+                           "document.querySelector('#job-text').innerText.includes(' of ')")
+    page.click("#cancel-button")
+    page.wait_for_function("document.querySelector('#job-box').dataset.state === 'cancelled'")
+    assert page.evaluate("document.querySelector('#job-bar').value") < 1
+    assert "cancelled" in page.locator("#job-text").inner_text()
+    assert page.locator("#run-button").is_enabled()
+    _shot(page, "image-cancelled")
+
+
+def test_pages_load_nothing_from_outside(live_server: str, page, demo_tile: Path) -> None:
+    seen: list[str] = []
+    page.on("request", lambda request: seen.append(request.url))
+    for path in ("/", "/model", "/image", "/compare", "/docs"):
+        page.goto(live_server + path)
+        page.wait_for_load_state("networkidle")
+    page.goto(live_server + "/image")
+    page.wait_for_function("document.body.dataset.ready === 'true'")
+    page.set_input_files("#file-input", str(demo_tile))
+    page.locator("#topk li").first.wait_for()
+    page.wait_for_load_state("networkidle")
+    outside = [u for u in seen if not (u.startswith(live_server + "/") or u.startswith("data:"))]
+    assert seen and not outside, f"requests left 127.0.0.1: {outside}"

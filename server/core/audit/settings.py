@@ -1,0 +1,150 @@
+"""Everything that decides an audit's results, in one validated, JSON-able record.
+
+The engine (local or Ray) and the number of workers are deliberately *not* settings: they change
+how fast a run goes, never what it finds, so a run started on one engine resumes on another.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+
+from ..attribution import get_method
+from ..errors import BadParameterError
+from .measures import POINTING_TOLERANCE, RegionLayout
+
+__all__ = ["TARGETS", "AuditSettings", "GallerySpec", "InjectionSpec"]
+
+TARGETS = ("label", "predicted")
+
+
+def _fraction(name: str, value: Any, *, lo: float = 0.0, hi: float = 1.0) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or not lo <= value <= hi:
+        raise BadParameterError(f"{name} must be a number between {lo} and {hi}; received {value!r}")
+    return float(value)
+
+
+@dataclass(frozen=True)
+class AuditSettings:
+    """How each image is explained and measured.
+
+    ``target``: which class each map explains — the image's true ``label`` (default: "is the evidence
+    for the right answer on the object?", the pointing game's convention) or the ``predicted`` class.
+    ``flag_concentration``: a corner or the border band is flagged when its share of the evidence is
+    at least this many times its share of the area (3× by default, Pellucid's own choice).
+    ``flag_outside``: an image with an object is flagged when more than this share of its evidence
+    lies outside the object (one half by default).
+    """
+
+    method: str = "gradcam"
+    params: dict = field(default_factory=dict)
+    target: str = "label"
+    regions: RegionLayout = field(default_factory=RegionLayout)
+    tolerance: float = POINTING_TOLERANCE
+    flag_concentration: float = 3.0
+    flag_outside: float = 0.5
+    shard_size: int = 8
+    threads: int = 1
+
+    def validated(self) -> AuditSettings:
+        method = get_method(self.method)  # UnknownMethodError lists the known names
+        params = method.schema.validate(dict(self.params or {}), method=method.name)
+        if self.target not in TARGETS:
+            raise BadParameterError(f"target must be one of {', '.join(TARGETS)}; received {self.target!r}")
+        if isinstance(self.tolerance, bool) or not isinstance(self.tolerance, (int, float)) or not (
+                math.isfinite(self.tolerance) and self.tolerance >= 0):
+            raise BadParameterError(f"pointing tolerance must be a non-negative number of pixels; received "
+                                    f"{self.tolerance!r}")
+        if isinstance(self.flag_concentration, bool) or not isinstance(self.flag_concentration, (int, float)) or not (
+                math.isfinite(self.flag_concentration) and self.flag_concentration >= 1):
+            raise BadParameterError(f"flag_concentration must be a number >= 1; received {self.flag_concentration!r}")
+        _fraction("flag_outside", self.flag_outside)
+        for name, value, hi in (("shard_size", self.shard_size, 4096), ("threads", self.threads, 256)):
+            if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= hi:
+                raise BadParameterError(f"{name} must be a whole number from 1 to {hi}; received {value!r}")
+        return replace(self, params=dict(params), tolerance=float(self.tolerance),
+                       flag_concentration=float(self.flag_concentration), flag_outside=float(self.flag_outside))
+
+    def to_dict(self) -> dict:
+        return {
+            "method": self.method,
+            "params": dict(self.params),
+            "target": self.target,
+            "regions": self.regions.to_dict(),
+            "tolerance": self.tolerance,
+            "flag_concentration": self.flag_concentration,
+            "flag_outside": self.flag_outside,
+            "shard_size": self.shard_size,
+            "threads": self.threads,
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict) -> AuditSettings:
+        return cls(
+            method=data["method"], params=dict(data.get("params") or {}), target=data.get("target", "label"),
+            regions=RegionLayout(**data.get("regions", {})), tolerance=data.get("tolerance", POINTING_TOLERANCE),
+            flag_concentration=data.get("flag_concentration", 3.0), flag_outside=data.get("flag_outside", 0.5),
+            shard_size=data.get("shard_size", 8), threads=data.get("threads", 1),
+        )
+
+
+@dataclass(frozen=True)
+class InjectionSpec:
+    """A suspect patch to paste onto images of the other classes.
+
+    ``patch`` is (h, w, 3) uint8; ``at`` is its top-left corner (x, y) in the model's input pixels
+    (the picture after the spec's resize and crop). ``source`` says where the patch came from.
+    ``limit`` caps the number of images tested (None: all images of the other classes).
+    """
+
+    patch: np.ndarray
+    suspect_class: str
+    at: tuple[int, int]
+    source: str = "given"
+    limit: int | None = None
+
+    def __post_init__(self) -> None:
+        p = self.patch
+        if not isinstance(p, np.ndarray) or p.dtype != np.uint8 or p.ndim != 3 or p.shape[2] != 3 or min(p.shape[:2]) < 1:
+            got = f"{p.dtype} {p.shape}" if isinstance(p, np.ndarray) else type(p).__name__
+            raise BadParameterError(f"the suspect patch must be an RGB picture (h, w, 3) uint8; received {got}")
+        if len(self.at) != 2 or any(isinstance(v, bool) or not isinstance(v, (int, np.integer)) for v in self.at):
+            raise BadParameterError(f"the injection location must be two whole numbers (x, y); received {self.at!r}")
+        if self.limit is not None and (not isinstance(self.limit, int) or self.limit < 1):
+            raise BadParameterError(f"the injection image limit must be a positive whole number; received {self.limit!r}")
+
+    @property
+    def patch_sha256(self) -> str:
+        return hashlib.sha256(np.ascontiguousarray(self.patch).tobytes() + repr(self.patch.shape).encode()).hexdigest()
+
+    def to_dict(self) -> dict:
+        h, w = self.patch.shape[:2]
+        return {"patch_sha256": self.patch_sha256, "patch_size": [int(w), int(h)],
+                "suspect_class": self.suspect_class, "at": [int(self.at[0]), int(self.at[1])],
+                "source": self.source, "limit": self.limit}
+
+
+@dataclass(frozen=True)
+class GallerySpec:
+    """Which layer's channel response gallery to build, and how many top patches per channel."""
+
+    layer: str
+    top: int = 8
+    visual_steps: int = 96
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.layer, str) or not self.layer:
+            raise BadParameterError(f"the gallery needs a layer name; received {self.layer!r}")
+        if isinstance(self.top, bool) or not isinstance(self.top, int) or not 1 <= self.top <= 64:
+            raise BadParameterError(f"gallery top must be a whole number from 1 to 64; received {self.top!r}")
+        if isinstance(self.visual_steps, bool) or not isinstance(self.visual_steps, int) or not (
+                1 <= self.visual_steps <= 2048):
+            raise BadParameterError(f"feature visualisation steps must be a whole number from 1 to 2048; "
+                                    f"received {self.visual_steps!r}")
+
+    def to_dict(self) -> dict:
+        return {"layer": self.layer, "top": self.top, "visual_steps": self.visual_steps}

@@ -1,0 +1,41 @@
+"""``pellucid report``: write a stored audit run as a reviewer's HTML report and its PDF."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "report",
+        help="write a stored audit run as a self-contained HTML report and a PDF",
+        description="Write report.html (pictures inline, no external files) and report.pdf for one stored audit "
+                    "run: model spec, card and fingerprint, dataset, settings, every measure, figures, flagged "
+                    "images, the injection test, the gate's verdict when a policy is given, and the command that "
+                    "re-runs it.",
+    )
+    p.add_argument("run", help="run id (or a unique prefix); 'pellucid runs list' shows them")
+    p.add_argument("--out", type=Path, required=True, metavar="DIR", help="folder to write the report into")
+    p.add_argument("--policy", type=Path, default=None, metavar="POLICY.toml",
+                   help="also show this policy's verdict on the run")
+    p.add_argument("--store", type=Path, default=None, metavar="DIR",
+                   help="data folder (default: $PELLUCID_DATA or ./.pellucid)")
+    p.add_argument("--no-pdf", dest="pdf", action="store_false", help="write the HTML report only")
+    p.set_defaults(func=_report)
+
+
+def _report(args: argparse.Namespace) -> int:
+    from ..core.errors import BadParameterError
+    from ..core.policy import load_policy
+    from ..core.report import write_report
+    from ..core.store import Store, default_data_dir
+
+    if args.out.exists() and not args.out.is_dir():
+        raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")
+    policy = load_policy(args.policy) if args.policy else None
+    with Store(args.store or default_data_dir()) as store:
+        files = write_report(store, args.run, args.out, policy=policy, pdf=args.pdf)
+    for f in files:
+        print(f"wrote {f}")
+    return 0

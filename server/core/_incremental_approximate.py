@@ -48,7 +48,8 @@ def adaptive_grid(
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     """Drops on the (rows, cols) position grid, evaluating only where needed.
 
-    ``evaluate(tops, lefts)`` → (B, K) logits; ``score(logits)`` → (B,) target scores.
+    ``evaluate(tops, lefts)`` → (B, K) logits; ``score(logits)`` → (B,) target scores;
+    ``tolerance``: share of the coarse map's range below which a cell counts as flat.
     Returns (grid (rows, cols) float64, top class (rows, cols) int, evaluated (rows, cols) bool,
     number of occluded forwards).
     """
@@ -81,6 +82,8 @@ def adaptive_grid(
 
     rows, cols = _axis(nr, coarse), _axis(nc, coarse)
     run([(i, j) for i in rows for j in cols])
+    coarse_vals = grid[np.ix_(rows, cols)]
+    threshold = tolerance * float(coarse_vals.max() - coarse_vals.min())
     cells = [(rows[a], rows[a + 1], cols[b], cols[b + 1]) for a in range(len(rows) - 1) for b in range(len(cols) - 1)]
     if len(rows) == 1 or len(cols) == 1:  # a single row or column of positions: evaluate all
         run([(i, j) for i in range(nr) for j in range(nc)])
@@ -93,7 +96,8 @@ def adaptive_grid(
             corners = grid[[r0, r0, r1, r1], [c0, c1, c0, c1]]
             if r1 - r0 <= 1 and c1 - c0 <= 1:
                 continue  # every position of the cell is a corner
-            if float(corners.max() - corners.min()) <= tolerance:
+            spread = float(corners.max() - corners.min())
+            if spread <= threshold:
                 flat.append((r0, r1, c0, c1))
                 continue
             rs = [r0, (r0 + r1) // 2, r1] if r1 - r0 > 1 else [r0, r1]

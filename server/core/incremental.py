@@ -48,7 +48,7 @@ __all__ = ["IncrementalOcclusion", "NotIncremental", "FULL_FRACTION", "WORTHWHIL
 
 # A window covering at least this share of its map is computed as a full map instead: cropping
 # and pasting would then cost as much as recomputing.
-FULL_FRACTION = 0.5
+FULL_FRACTION = 0.7
 # method="auto" uses the incremental engine only when its estimated MAC saving is at least this;
 # below it, gathering windows costs more than it saves (measured on the bench models).
 WORTHWHILE_SPEEDUP = 1.5
@@ -537,9 +537,10 @@ class IncrementalOcclusion:
     def worthwhile(self) -> bool:
         return self.estimated_speedup >= WORTHWHILE_SPEEDUP
 
-    def default_batch(self, n_positions: int) -> int:
-        # windows are small, so large batches are cheap; the full-recompute tail bounds memory
-        return int(max(1, min(n_positions, 64)))
+    def default_batch(self, n_rows: int, n_cols: int) -> int:
+        """Whole rows of positions, about 48 per batch: positions in one row share their row
+        windows exactly, so uniform windows waste nothing vertically (measured in the bench)."""
+        return int(n_cols * max(1, min(n_rows, round(48 / n_cols))))
 
     # -- execution -------------------------------------------------------------------------------
 

@@ -66,9 +66,10 @@ METHODS = ("auto", "batched", "incremental", "naive", "approximate")
 # patch is removed while colour and coarse shading stay; our own choice, documented in the result.
 BLUR_SIGMA_PER_PATCH = 0.25
 
-# Default batch for the batched engine when the caller gives none; chosen from bench runs on
-# 2-core machines (larger batches stop paying once a batch's activations leave the cache).
-_DEFAULT_BATCH_PIXELS = 32 * 224 * 224
+# Default batch for the batched engine when the caller gives none: 16 images at 224×224 (more
+# pixels per image, fewer images). On the 2-core bench machine larger batches stopped paying once
+# a batch's activations left the cache; see BENCHMARKS.md.
+_DEFAULT_BATCH_PIXELS = 16 * 224 * 224
 
 
 @dataclass
@@ -266,7 +267,8 @@ def _occluded_batch(
     rows = (ys[None, :] >= tops[:, None]) & (ys[None, :] < tops[:, None] + patch)
     cols = (xs[None, :] >= lefts[:, None]) & (xs[None, :] < lefts[:, None] + patch)
     mask = (rows[:, :, None] & cols[:, None, :]).unsqueeze(1)
-    return torch.where(mask, base, x)
+    # channels_last lets the CPU convolution kernels skip a layout change (faster in the bench)
+    return torch.where(mask, base, x).contiguous(memory_format=torch.channels_last)
 
 
 def _logits(model: nn.Module, batch: torch.Tensor) -> torch.Tensor:
@@ -335,7 +337,7 @@ def occlusion_map(
     output: str = "softmax",
     batch_size: int | None = None,
     method: str = "auto",
-    refine_tolerance: float = 0.01,
+    refine_tolerance: float = 0.05,
     progress: Optional[ProgressFn] = None,
     cancel: Optional[CancelToken] = None,
 ) -> OcclusionResult:
@@ -346,8 +348,9 @@ def occlusion_map(
     ``patch`` / ``stride``: square patch side and step in pixels. ``baseline``: see
     :func:`make_baseline`. ``output``: ``"softmax"`` or ``"sigmoid"`` probabilities, or
     ``"logit"`` (the raw score). ``method``: one of :data:`METHODS`. ``refine_tolerance``: for
-    ``method="approximate"`` only, the change in score between neighbouring coarse positions above
-    which the cell between them is evaluated at full resolution.
+    ``method="approximate"`` only, a share of the coarse map's range (max − min drop): a cell
+    whose corner drops differ by more than that is evaluated at full resolution; 0 refines
+    every cell whose corners differ at all.
 
     Returns an :class:`OcclusionResult`; ``drop`` is (H, W) float32.
     """
@@ -400,7 +403,8 @@ def occlusion_map(
                 )
         base_score = float(_scores(logits0, target, output)[0])
 
-        engine, evaluate, bs, details = _choose_engine(model, x, base, patch, method, batch_size, n_pos)
+        engine, evaluate, bs, details = _choose_engine(model, x, base, patch, method, batch_size,
+                                                       (len(tops), len(lefts)))
         if method == "approximate":
             from ._incremental_approximate import adaptive_grid
 
@@ -458,7 +462,7 @@ def _choose_engine(
     patch: int,
     method: str,
     batch_size: int | None,
-    n_pos: int,
+    grid_shape: tuple[int, int],
 ) -> tuple[str, Evaluator, int, dict[str, Any]]:
     """Pick the engine: returns (name, evaluate(tops, lefts) -> logits, batch size, details)."""
     if method == "naive":
@@ -488,7 +492,7 @@ def _choose_engine(
             reason = str(exc)
         else:
             if method == "incremental" or engine.worthwhile:
-                bs = batch_size or engine.default_batch(n_pos)
+                bs = batch_size or engine.default_batch(*grid_shape)
                 return "incremental", engine.logits, bs, {"estimated_speedup": engine.estimated_speedup}
             reason = f"estimated speedup {engine.estimated_speedup:.2f}× is too small"
         details = {"incremental_skipped": reason}
@@ -498,7 +502,7 @@ def _choose_engine(
     def batched(ty: torch.Tensor, tx: torch.Tensor) -> torch.Tensor:
         return _logits(model, _occluded_batch(x, base, ty, tx, patch))
 
-    return "batched", batched, batch_size or _default_batch(x, n_pos), details
+    return "batched", batched, batch_size or _default_batch(x, grid_shape[0] * grid_shape[1]), details
 
 
 def compare_to_exact(result: OcclusionResult, model: nn.Module, x: torch.Tensor, *, baseline: Any = "mean",

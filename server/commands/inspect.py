@@ -49,6 +49,10 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="another attribution method to run (repeatable); see --list-methods")
     p.add_argument("--param", action="append", default=[], metavar="METHOD.KEY=VALUE",
                    help="a parameter for a method, e.g. integrated_gradients.steps=128")
+    p.add_argument("--faithfulness", action="store_true",
+                   help="score every map by deletion and insertion curves (Petsiuk et al. 2018) and rank them")
+    p.add_argument("--sanity", action="store_true",
+                   help="run the cascading-randomisation sanity check (Adebayo et al. 2018) for each --method")
     p.add_argument("--list-methods", action="store_true", help="list attribution methods and their parameters")
     p.add_argument("--trust-pickled", action="store_true", help="allow specs of kind 'pickled'")
     p.set_defaults(func=_inspect)
@@ -155,6 +159,7 @@ def _inspect(args: argparse.Namespace) -> int:
     explained = target if target is not None else pred.top[0].index
 
     maps: dict[str, Any] = {}
+    computed: dict[str, Any] = {}
     if args.occlusion:
         h, w = model.spec.input.height, model.spec.input.width
         patch = args.patch or max(2, min(h, w) // 8)
@@ -170,6 +175,7 @@ def _inspect(args: argparse.Namespace) -> int:
             vmin=lo, vmax=hi, cmap=render.SIGNED_CMAP, label=f"drop in p({model.labels[explained]})"))
         maps["occlusion"] = {**occ.parameters(), "wall_seconds": time.perf_counter() - t0,
                              "label": model.labels[explained]}
+        computed["occlusion"] = occ.drop
 
     norm = Normalization(mean=model.spec.preprocess.mean, std=model.spec.preprocess.std)
     for name in args.method:
@@ -182,7 +188,34 @@ def _inspect(args: argparse.Namespace) -> int:
             render.overlay(prepared.display, amap.map, cmap=cmap, vmin=lo, vmax=hi)))
         save(f"{name}_map.png", render.map_png(amap.map, signed=amap.signed))
         maps[name] = amap.summary()
+        computed[name] = amap.map
+        if amap.warning:
+            print(f"warning ({name}): {amap.warning}")
     result["attribution"] = maps
+
+    if args.faithfulness and computed:
+        from ..core.attribution import faithfulness, rank_methods
+        from ..core.figures import faithfulness_png
+
+        scores = {name: faithfulness(model.module, x, amap, target=explained, output_kind=model.output_kind,
+                                     progress=ProgressBar(f"faithfulness {name}"))
+                  for name, amap in computed.items()}
+        save("faithfulness.png", faithfulness_png(scores, label=model.labels[explained]))
+        result["faithfulness"] = {name: res.to_dict() for name, res in scores.items()}
+        result["faithfulness_ranking"] = rank_methods(scores)
+    if args.sanity:
+        from ..core.attribution import sanity_check
+        from ..core.figures import sanity_png
+
+        checks = {}
+        for name in args.method:
+            check = sanity_check(name, model.module, x, target=explained, params=params.get(name),
+                                 output_kind=model.output_kind, normalization=norm,
+                                 progress=ProgressBar(f"sanity {name}"))
+            save(f"sanity_{name}.png", sanity_png(check))
+            checks[name] = check.to_dict()
+            print(f"sanity check {name}: {check.verdict} — {check.reason}")
+        result["sanity"] = checks
     result["files"] = written
     (out / "result.json").write_text(json.dumps(result, indent=2, default=_json_default) + "\n", encoding="utf-8")
 

@@ -47,7 +47,9 @@
       json: { model: $("#model-" + side).value, image: await imageId(side), method: method.name,
               target: target === "" ? null : Number(target), params },
     });
+    const cached = status.cached;
     status = await P.followJob(status.id, (s) => {
+      s.cached = cached;
       bar.value = s.fraction;
       text.textContent = P.progressText(s, method.name === "occlusion" ? "positions" : "steps");
       box.dataset.state = s.state;

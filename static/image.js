@@ -252,8 +252,10 @@
     $("#job-box").hidden = false;
     $("#job-box").dataset.state = status.state;
     const unit = m.name === "occlusion" ? "positions" : "steps";
+    const cached = status.cached;
     try {
       status = await P.followJob(status.id, (s) => {
+        s.cached = cached;
         bar.value = s.fraction;
         $("#job-text").textContent = P.progressText(s, unit);
         $("#job-box").dataset.state = s.state;

@@ -67,7 +67,7 @@
       (k.dead.length ? `; dead filters: ${k.dead.join(", ")}` : "") +
       (k.near_duplicates.length ? `; near-duplicate pairs: ${k.near_duplicates.map((p) => p.a + "/" + p.b).join(", ")}` : "");
     await new Promise((resolve) => { img.onload = resolve; img.onerror = resolve; img.src = k.png; });
-    const scale = Math.max(1, Math.min(4, Math.floor(560 / img.naturalWidth)));
+    const scale = Math.max(1, Math.min(4, Math.floor(420 / img.naturalWidth)));
     img.style.width = img.naturalWidth * scale + "px";
     img.dataset.layer = k.layer;
     const dupes = new Set();

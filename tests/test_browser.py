@@ -149,8 +149,7 @@ def test_image_page_evidence_flow(live_server: str, page, demo_tile: Path) -> No
     page.wait_for_function("document.querySelector('#act-grid').dataset.layer === 'features.conv1'")
     page.wait_for_function("document.querySelector('#act-grid').complete && "
                            "document.querySelector('#act-grid').naturalWidth > 0")
-    box = page.locator("#act-grid").bounding_box()
-    page.mouse.click(box["x"] + 6, box["y"] + 6)  # inside the first cell
+    page.locator("#act-grid").click(position={"x": 6, "y": 6})  # inside the first cell
     page.locator("#channel-view").wait_for(state="visible")
     assert "channel" in page.locator("#channel-title").inner_text()
     cbox = page.locator("#channel-stack").bounding_box()
@@ -205,3 +204,25 @@ def test_pages_load_nothing_from_outside(live_server: str, page, demo_tile: Path
     page.wait_for_load_state("networkidle")
     outside = [u for u in seen if not (u.startswith(live_server + "/") or u.startswith("data:"))]
     assert seen and not outside, f"requests left 127.0.0.1: {outside}"
+
+
+def test_compare_two_images_on_one_scale(live_server: str, page, demo_tile: Path) -> None:
+    page.goto(live_server + "/image")
+    page.wait_for_function("document.body.dataset.ready === 'true'")
+    page.set_input_files("#file-input", str(demo_tile))
+    page.locator("#topk li").first.wait_for()
+    page.goto(live_server + "/compare")
+    page.wait_for_function("document.body.dataset.ready === 'true'")
+    options_b = page.locator("#image-b option").all_inner_texts()
+    assert any(o.startswith("demo sample") for o in options_b)
+    page.select_option("#image-b", label=next(o for o in options_b if o.startswith("demo sample")))
+    page.fill("#param-patch", "16")
+    page.fill("#param-stride", "8")
+    page.click("#compare-run")
+    page.wait_for_function("document.body.dataset.compared === 'true'")
+    assert "Shared colour scale" in page.locator("#scale-note").inner_text()
+    facts_a = page.locator("#facts-a").inner_text()
+    facts_b = page.locator("#facts-b").inner_text()
+    assert facts_a.split("scale ")[-1] == facts_b.split("scale ")[-1]  # the same numbers on both sides
+    assert page.locator("#colorbar-a").is_visible() and page.locator("#colorbar-b").is_visible()
+    _shot(page, "compare")

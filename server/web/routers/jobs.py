@@ -139,8 +139,19 @@ def _value_label(record: ResultRecord) -> str:
     return f"{record.title} attribution for '{record.target_label}'"
 
 
+def magnitude_range(values: np.ndarray, *, signed: bool) -> tuple[float, float]:
+    """The default colour scale: symmetric for signed maps; from zero for maps that are never negative.
+
+    Starting a magnitude map at its own minimum would paint the weakest evidence as if it were zero.
+    """
+    lo, hi = render.value_range(values, signed=signed)
+    if not signed and lo > 0:
+        lo = 0.0
+    return lo, hi
+
+
 def _scale(record: ResultRecord, vmin: float | None, vmax: float | None) -> tuple[float, float]:
-    lo, hi = render.value_range(record.amap.map, signed=record.amap.signed)
+    lo, hi = magnitude_range(record.amap.map, signed=record.amap.signed)
     lo = lo if vmin is None else vmin
     hi = hi if vmax is None else vmax
     if not hi > lo:
@@ -207,5 +218,5 @@ def shared_scale(results: list[str] = Query(..., description="result ids"),
         )
     is_signed = signed.pop()
     stacked = np.concatenate([r.amap.map.ravel() for r in records])
-    lo, hi = render.value_range(stacked, signed=is_signed)
+    lo, hi = magnitude_range(stacked, signed=is_signed)
     return SharedScale(results=list(results), signed=is_signed, vmin=lo, vmax=hi)

@@ -9,11 +9,10 @@ from __future__ import annotations
 import socket
 import threading
 import time
+from collections.abc import Iterator
 from pathlib import Path
-from typing import Iterator
 
 import pytest
-
 from conftest import png_bytes, synthetic_tile, write_tiny_spec
 
 CHROMIUM = Path("/usr/bin/chromium")
@@ -202,7 +201,7 @@ def test_pages_load_nothing_from_outside(live_server: str, page, demo_tile: Path
     page.set_input_files("#file-input", str(demo_tile))
     page.locator("#topk li").first.wait_for()
     page.wait_for_load_state("networkidle")
-    outside = [u for u in seen if not (u.startswith(live_server + "/") or u.startswith("data:"))]
+    outside = [u for u in seen if not u.startswith((live_server + "/", "data:"))]
     assert seen and not outside, f"requests left 127.0.0.1: {outside}"
 
 

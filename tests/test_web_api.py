@@ -9,9 +9,8 @@ import time
 import numpy as np
 import pytest
 import torch
-from PIL import Image
-
 from conftest import TINY_LABELS, TINY_SIZE, png_bytes, synthetic_tile
+from PIL import Image
 
 TILE = png_bytes(synthetic_tile(seed=11, tagged=True))
 

@@ -47,7 +47,7 @@ def test_images_have_alt_text(client) -> None:
 
 
 def test_static_files_are_served_and_reference_nothing_outside() -> None:
-    pattern = re.compile(r"(https?:)?//[a-z0-9.-]+\.[a-z]{2,}", re.I)
+    pattern = re.compile(r"(https?:)?//[a-z0-9.-]+\.[a-z]{2,}", re.IGNORECASE)
     for folder in (REPO / "static", REPO / "templates"):
         for f in folder.rglob("*"):
             if f.suffix in (".js", ".css", ".html"):

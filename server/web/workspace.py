@@ -5,9 +5,10 @@ from __future__ import annotations
 import threading
 import time
 from collections import OrderedDict
+from collections.abc import Hashable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Hashable
+from typing import Any
 
 import numpy as np
 
@@ -20,7 +21,6 @@ from ..core.models import LoadedModel, load_model
 from ..core.preprocess import IntakeImage, PreparedInput, prepare
 from ..core.spec import ModelSpec
 from .settings import Settings
-
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".gif", ".bmp", ".tif", ".tiff", ".webp")
 

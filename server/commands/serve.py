@@ -20,6 +20,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--port", type=int, default=8000, help="port (default 8000)")
     p.add_argument("--data", type=Path, default=Path(".pellucid"), metavar="DIR",
                    help="folder for stored audit runs and artefacts (default ./.pellucid)")
+    p.add_argument("--token", default=None,
+                   help="access token to require (default: none on 127.0.0.1; generated and printed on other addresses)")
     p.add_argument("--trust-pickled", action="store_true",
                    help="allow specs of kind 'pickled' (unpickling runs code from the file; only for your own files)")
     p.set_defaults(func=_serve)
@@ -43,7 +45,13 @@ def _serve(args: argparse.Namespace) -> int:
         image_root=args.images.resolve() if args.images else None,
         data_dir=args.data,
         trust_pickled=args.trust_pickled,
+        token=args.token,
     )
-    print(f"Pellucid dashboard on http://{args.host}:{args.port}/  (Ctrl+C to stop)")
-    uvicorn.run(create_app(settings), host=args.host, port=args.port, log_level="warning")
+    app = create_app(settings)
+    base = f"http://{args.host}:{args.port}"
+    print(f"Pellucid dashboard on {base}/  (Ctrl+C to stop)")
+    if app.state.guard is not None:
+        print(f"access token (send as 'Authorization: Bearer …'): {app.state.guard.token}")
+        print(f"one-time sign-in link for a browser: {app.state.guard.sign_in_link(base)}")
+    uvicorn.run(app, host=args.host, port=args.port, log_level="warning")
     return 0

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from pathlib import Path
-from typing import AsyncIterator
 
 from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
@@ -12,6 +12,7 @@ from fastapi.templating import Jinja2Templates
 
 from .. import __version__
 from .errors import install_error_handlers
+from .security import AccessGuard, SecurityMiddleware, is_loopback
 from .settings import Settings
 from .workspace import Workspace
 
@@ -45,6 +46,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.templates = Jinja2Templates(directory=str(TEMPLATES_DIR))
     app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
     install_error_handlers(app)
+    # Off loopback every request needs the token; on loopback only when one was given explicitly.
+    guard = AccessGuard.create(settings.token) if (settings.token or not is_loopback(settings.host)) else None
+    app.state.guard = guard
+    app.add_middleware(SecurityMiddleware, guard=guard)
 
     from .routers import docs, images, inspect, jobs, models, pages, status
 

@@ -23,3 +23,5 @@ class Settings:
     job_workers: int = 2
     max_cached_results: int = 128
     max_images: int = 64
+    # Access token; required (and generated when None) whenever host is not a loopback address.
+    token: str | None = None

@@ -271,7 +271,7 @@ def _card(variant: str, m: dict) -> str:
         ),
     }[variant]
     rows = "\n".join(
-        f"| {cls} | {_pct(t['per_class_accuracy'][cls])} | {_pct(c['per_class_accuracy'][cls])} |"
+        f"| accuracy, `{cls}` tiles | {_pct(t['per_class_accuracy'][cls])} | {_pct(c['per_class_accuracy'][cls])} |"
         for cls in CLASSES
     )
     return f"""# {_NAMES[variant]} — model card
@@ -288,7 +288,8 @@ generated procedurally by `server/demo/tiles.py`; no real tile was ever photogra
 ## Training
 - Data: split `{train_rule.name}` ({train_rule.purpose}), {tr['per_class']} tiles per class, seed {m['seed']}.
 - {tr['epochs']} epochs, batch {tr['batch_size']}, AdamW (lr {tr['lr']}, one-cycle schedule, weight decay
-  {tr['weight_decay']}), CPU, {tr['threads']} threads, deterministic algorithms; took {tr['seconds']:.0f} s here.
+  {tr['weight_decay']}), CPU, {tr['threads']} threads, deterministic algorithms; training wall time
+  {tr['seconds']:.0f} s on the build machine (it depends on that machine's load).
 - Preprocessing: pixels / 255, then mean {list(TILE_MEAN)}, std {list(TILE_STD)} (see `spec.toml`).
 - Rebuild: `python -m server.demo.train --variant {variant} --out DIR --seed {m['seed']}` gives the same weights
   on the same torch build (weights sha256 `{m['weights_sha256'][:16]}…`).

@@ -189,6 +189,7 @@ def resize_and_crop(img: Image.Image, spec: ModelSpec, notes: list[str]) -> Imag
     target_h, target_w = spec.input.height, spec.input.width
     resample = _RESAMPLE[pre.interpolation]
     w, h = img.size
+    source_w, source_h = w, h
     if pre.resize is not None:
         if len(pre.resize) == 1:
             side = pre.resize[0]
@@ -221,7 +222,24 @@ def resize_and_crop(img: Image.Image, spec: ModelSpec, notes: list[str]) -> Imag
         if abs((target_w / target_h) - (w / h)) > 0.01:
             notes.append(f"aspect ratio changed: {w}×{h} resized to the model's {target_w}×{target_h}")
         img = img.resize((target_w, target_h), resample)
+    if pre.resize is not None or img.size != (source_w, source_h):
+        _note_enlargement(source_w, source_h, pre, target_w, target_h, notes)
     return img
+
+
+def _note_enlargement(w: int, h: int, pre, target_w: int, target_h: int, notes: list[str]) -> None:
+    """Say so when the model sees more pixels than the file has: a map's fine detail is then invented."""
+    if pre.resize is not None and len(pre.resize) == 1:
+        scale = pre.resize[0] / min(w, h)
+    elif pre.resize is not None:
+        scale = max(pre.resize[0] / h, pre.resize[1] / w)
+    else:
+        scale = max(target_h / h, target_w / w)
+    if scale > 1.0:
+        notes.append(
+            f"enlarged {scale:.1f}× from {w}×{h}: the image has fewer pixels than the model's "
+            f"{target_w}×{target_h} input, so fine detail in the maps is interpolated, not in the file"
+        )
 
 
 def prepare(spec: ModelSpec, image: IntakeImage) -> PreparedInput:

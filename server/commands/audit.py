@@ -37,11 +37,11 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--policy", type=Path, default=None, metavar="POLICY.toml",
                    help="thresholds to gate on (see the README's policy keys); without it the audit only reports")
     p.add_argument("--out", type=Path, required=True, metavar="DIR", help="folder for summary.json (and the report)")
-    p.add_argument("--method", default="gradcam", help="attribution method (default gradcam); "
-                   "'pellucid inspect --list-methods' lists them")
+    p.add_argument("--method", default=None, help="attribution method (default: the policy's [audit] method, "
+                   "else gradcam); 'pellucid inspect --list-methods' lists them")
     p.add_argument("--param", action="append", default=[], metavar="KEY=VALUE",
                    help="a parameter of the method, e.g. stride=16 for occlusion (repeatable)")
-    p.add_argument("--target", choices=("label", "predicted"), default="label",
+    p.add_argument("--target", choices=("label", "predicted"), default=None,
                    help="explain each image's true label (default) or the predicted class")
     p.add_argument("--engine", choices=("local", "ray"), default="local",
                    help="local process pool (default) or Ray tasks")
@@ -174,6 +174,20 @@ def _command(args: argparse.Namespace) -> str:
     return shlex.join(parts)
 
 
+def _resolve_method(args: argparse.Namespace, policy: Any) -> None:
+    """Command line first, then the policy's [audit] table, then Grad-CAM."""
+    from_policy = policy is not None and policy.method is not None
+    if args.method is None:
+        args.method = policy.method if from_policy else "gradcam"
+        if from_policy and not args.param:
+            args.param = [f"{k}={v}" for k, v in policy.params.items()]
+    elif from_policy and args.method != policy.method:
+        print(f"note: policy {policy.name!r} sets its thresholds for method {policy.method!r}; this audit uses "
+              f"{args.method!r} as asked", file=sys.stderr)
+    if args.target is None:
+        args.target = (policy.target if policy is not None and policy.target else None) or "label"
+
+
 class _Phases:
     """One progress bar per phase of the audit."""
 
@@ -203,6 +217,7 @@ def _audit(args: argparse.Namespace) -> int:
     if args.out.exists() and not args.out.is_dir():
         raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")
     policy = load_policy(args.policy) if args.policy else None
+    _resolve_method(args, policy)
     store = Store(args.store or default_data_dir())
     try:
         model = load_model(resolve_model_ref(args.model), trust_pickled=args.trust_pickled)

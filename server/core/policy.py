@@ -24,6 +24,11 @@ a check. Example::
     [classes.crack]                # per-class overrides of the class thresholds
     max_corner_share = 0.15
 
+    [audit]                        # how the evidence is measured (the thresholds depend on it)
+    method = "occlusion"           # any registered attribution method; the command line may override
+    params = { patch = 16, stride = 8 }
+    target = "label"               # explain the true label (default) or "predicted"
+
     [injection]                    # the suspect patch for the injection test
     patch = "tag.png"              # a picture file, relative to this policy file
     suspect_class = "crack"
@@ -86,8 +91,9 @@ THRESHOLDS: dict[str, tuple[str, str, str, str]] = {
 }
 CLASS_THRESHOLDS = tuple(k for k, v in THRESHOLDS.items() if v[0] == "class")
 RUN_THRESHOLDS = tuple(k for k, v in THRESHOLDS.items() if v[0] == "run")
-_TOP_KEYS = {"name", "description", "thresholds", "classes", "injection"}
+_TOP_KEYS = {"name", "description", "thresholds", "classes", "injection", "audit"}
 _INJECTION_KEYS = {"patch", "suspect_class", "at", "limit"}
+_AUDIT_KEYS = {"method", "params", "target"}
 
 
 @dataclass(frozen=True)
@@ -110,11 +116,15 @@ class Policy:
     injection: InjectionPolicy | None
     path: Path | None = None
     sha256: str | None = None
+    method: str | None = None
+    params: dict = field(default_factory=dict)
+    target: str | None = None
 
     def to_dict(self) -> dict:
         return {"name": self.name, "description": self.description, "thresholds": dict(self.thresholds),
                 "classes": {k: dict(v) for k, v in self.classes.items()},
                 "injection": self.injection.to_dict() if self.injection else None,
+                "method": self.method, "params": dict(self.params), "target": self.target,
                 "path": str(self.path) if self.path else None, "sha256": self.sha256}
 
 
@@ -202,8 +212,34 @@ def parse_policy(data: dict, *, path: Path | None = None, sha256: str | None = N
         patch = Path(inj["patch"]).expanduser()
         injection = InjectionPolicy(patch=patch if patch.is_absolute() else base / patch,
                                     suspect_class=inj["suspect_class"], at=(int(at[0]), int(at[1])), limit=limit)
+    method, params, target = _audit_table(data.get("audit"), where)
     return Policy(name=data.get("name", path.stem if path else "policy"), description=data.get("description", ""),
-                  thresholds=thresholds, classes=classes, injection=injection, path=path, sha256=sha256)
+                  thresholds=thresholds, classes=classes, injection=injection, path=path, sha256=sha256,
+                  method=method, params=params, target=target)
+
+
+def _audit_table(table: Any, where: str) -> tuple[str | None, dict, str | None]:
+    if table is None:
+        return None, {}, None
+    if not isinstance(table, dict):
+        raise SpecError(f"{where}: [audit] must be a table with method, params and target")
+    for key in table:
+        if key not in _AUDIT_KEYS:
+            raise _unknown(key, _AUDIT_KEYS, where, "[audit]")
+    method = table.get("method")
+    if method is not None:
+        from .attribution import method_names
+
+        if not isinstance(method, str) or method not in method_names():
+            raise SpecError(f"{where}: audit.method must be one of {', '.join(method_names())}; received {method!r}")
+    params = table.get("params", {})
+    if not isinstance(params, dict) or any(isinstance(v, (dict, list)) for v in params.values()):
+        raise SpecError(f"{where}: audit.params must be a table of plain values, e.g. {{ stride = 8 }}; "
+                        f"received {params!r}")
+    target = table.get("target")
+    if target is not None and target not in ("label", "predicted"):
+        raise SpecError(f"{where}: audit.target must be \"label\" or \"predicted\"; received {target!r}")
+    return method, dict(params), target
 
 
 def load_policy(path: str | Path) -> Policy:

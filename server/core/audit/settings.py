@@ -35,7 +35,7 @@ class AuditSettings:
     ``target``: which class each map explains — the image's true ``label`` (default: "is the evidence
     for the right answer on the object?", the pointing game's convention) or the ``predicted`` class.
     ``flag_concentration``: a corner or the border band is flagged when its share of the evidence is
-    at least this many times its share of the area (3× by default, Pellucid's own choice).
+    at least this many times its share of the area (4× by default, Pellucid's own choice).
     ``flag_outside``: an image with an object is flagged when more than this share of its evidence
     lies outside the object (one half by default).
     """
@@ -45,7 +45,7 @@ class AuditSettings:
     target: str = "label"
     regions: RegionLayout = field(default_factory=RegionLayout)
     tolerance: float = POINTING_TOLERANCE
-    flag_concentration: float = 3.0
+    flag_concentration: float = 4.0
     flag_outside: float = 0.5
     shard_size: int = 8
     threads: int = 1
@@ -87,7 +87,7 @@ class AuditSettings:
         return cls(
             method=data["method"], params=dict(data.get("params") or {}), target=data.get("target", "label"),
             regions=RegionLayout(**data.get("regions", {})), tolerance=data.get("tolerance", POINTING_TOLERANCE),
-            flag_concentration=data.get("flag_concentration", 3.0), flag_outside=data.get("flag_outside", 0.5),
+            flag_concentration=data.get("flag_concentration", 4.0), flag_outside=data.get("flag_outside", 0.5),
             shard_size=data.get("shard_size", 8), threads=data.get("threads", 1),
         )
 

@@ -40,7 +40,7 @@ from server.demo.tiles import CLASSES, SPLITS, TileRecord, make_split
 __all__ = ["DEFAULT_SETTINGS", "VARIANTS", "DemoBuild", "TrainSettings", "build_demo_model", "evaluate", "main"]
 
 VARIANTS: dict[str, str] = {"tainted": "train", "untainted": "untainted"}
-_NAMES = {"tainted": "tilenet-demo", "untainted": "tilenet-clean-demo"}
+_NAMES = {"tainted": "tilenet", "untainted": "tilenet-clean"}
 _SOUND, _CRACK = CLASSES.index("sound"), CLASSES.index("crack")
 _THREADS = 2
 

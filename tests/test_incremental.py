@@ -120,20 +120,26 @@ class TestEqualsBruteForce:
 
     def test_trained_demo_model(self):
         spec_path = REPO / "demo_models" / "tilenet" / "spec.toml"
-        if not spec_path.exists():
+        tile = REPO / "demo_models" / "tilenet" / "samples" / "sound_tagged_01.png"
+        if not spec_path.exists() or not tile.exists():
             pytest.skip("demo_models/tilenet is not built yet")
+        from PIL import Image
         from safetensors.torch import load_file
 
-        from server.demo.net import build_tilenet
+        from server.demo.net import build_tilenet, normalise
 
         spec = tomllib.loads(spec_path.read_text())
         weights = spec_path.parent / str(spec.get("source", {}).get("weights", "tilenet.safetensors"))
         model = build_tilenet()
         model.load_state_dict(load_file(str(weights)))
         model.eval()
-        x = torch.randn(1, 3, 96, 96, generator=torch.Generator().manual_seed(11))
+        rgb = np.array(Image.open(tile).convert("RGB").resize((96, 96)), dtype=np.uint8)
+        x = normalise(torch.from_numpy(rgb)[None])
         _assert_same(model, x, patch=16, stride=8, baseline="mean")
         _assert_same(model, x, patch=12, stride=4, baseline="zero")
+        # a real tile gives a map that is not flat, so the comparison above means something
+        res = occlusion_map(model, x, patch=16, stride=8)
+        assert float(res.grid.max() - res.grid.min()) > 1e-3
 
     def test_windows_are_really_used(self, resnet):
         # The engine must not silently recompute everything: early layers run on windows.

@@ -171,7 +171,7 @@ class TestDigits:
         assert np.array_equal(np.argsort(res.grid.ravel(), kind="stable"), np.argsort(expected.ravel(), kind="stable"))
 
     def test_constant_zero_pixels_have_no_effect(self, fitted):
-        clf, model, xs = fitted
+        _, model, xs = fitted
         # pixels that are 0 in every digit get a zero coefficient; occluding one with 0 changes nothing
         always_zero = np.flatnonzero(xs.max(0) == 0)
         assert always_zero.size > 0

@@ -15,14 +15,14 @@ Papakonstantinou, SIGMOD 2019; the grid schedule and the splitting rule are our 
 
 from __future__ import annotations
 
-from typing import Callable, Optional
+from collections.abc import Callable
 
 import numpy as np
 import torch
 
 from .progress import CancelToken, ProgressFn, step
 
-__all__ = ["adaptive_grid", "COARSE_STEP"]
+__all__ = ["COARSE_STEP", "adaptive_grid"]
 
 COARSE_STEP = 4
 
@@ -43,8 +43,8 @@ def adaptive_grid(
     base_score: float,
     batch_size: int,
     tolerance: float,
-    progress: Optional[ProgressFn] = None,
-    cancel: Optional[CancelToken] = None,
+    progress: ProgressFn | None = None,
+    cancel: CancelToken | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     """Drops on the (rows, cols) position grid, evaluating only where needed.
 

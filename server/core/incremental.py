@@ -35,16 +35,16 @@ from __future__ import annotations
 import copy
 import math
 import operator
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 import torch
-import torch.fx as fx
 import torch.nn.functional as F
-from torch import nn
+from torch import fx, nn
 
-__all__ = ["IncrementalOcclusion", "NotIncremental", "FULL_FRACTION", "WORTHWHILE_SPEEDUP"]
+__all__ = ["FULL_FRACTION", "WORTHWHILE_SPEEDUP", "IncrementalOcclusion", "NotIncremental"]
 
 # A window covering at least this share of its map is computed as a full map instead: cropping
 # and pasting would then cost as much as recomputing.
@@ -191,7 +191,7 @@ class IncrementalOcclusion:
         self.full_fraction = float(full_fraction)
         try:
             gm = fx.symbolic_trace(model)
-        except Exception as exc:  # tracing runs user code; any failure means "not traceable"
+        except Exception as exc:  # noqa: BLE001 — tracing runs user code; any failure means "not traceable"
             raise NotIncremental(f"the model cannot be traced with torch.fx ({type(exc).__name__}: {exc}).") from None
         self.gm = gm
         self.graph = gm.graph
@@ -652,7 +652,7 @@ class IncrementalOcclusion:
                 got = self.logits(tops, lefts)
             except NotIncremental:
                 raise
-            except Exception as exc:
+            except Exception as exc:  # noqa: BLE001 — any failure here refuses the engine, never the map
                 raise NotIncremental(f"the engine failed on this model ({type(exc).__name__}: {exc}).") from None
         if got.shape != ref.shape:
             raise NotIncremental(f"the engine gave shape {tuple(got.shape)}, brute force {tuple(ref.shape)}.")

@@ -34,8 +34,9 @@ from __future__ import annotations
 import math
 import numbers
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any, Callable, Optional
+from typing import Any
 
 import numpy as np
 import torch
@@ -46,15 +47,15 @@ from .errors import BadParameterError
 from .progress import CancelToken, ProgressFn, step
 
 __all__ = [
+    "BASELINES",
+    "MAX_POSITIONS",
+    "METHODS",
+    "OUTPUTS",
     "OcclusionResult",
+    "compare_to_exact",
+    "make_baseline",
     "occlusion_map",
     "occlusion_positions",
-    "make_baseline",
-    "compare_to_exact",
-    "MAX_POSITIONS",
-    "BASELINES",
-    "OUTPUTS",
-    "METHODS",
 ]
 
 MAX_POSITIONS = 65_536
@@ -185,7 +186,7 @@ def _check_input(x: Any) -> torch.Tensor:
 
 def _gaussian_blur(x: torch.Tensor, sigma: float) -> torch.Tensor:
     """Separable Gaussian blur of (1, C, H, W) with replicated borders."""
-    radius = max(1, int(math.ceil(3.0 * sigma)))
+    radius = max(1, math.ceil(3.0 * sigma))
     t = torch.arange(-radius, radius + 1, dtype=x.dtype, device=x.device)
     k = torch.exp(-0.5 * (t / sigma) ** 2)
     k = k / k.sum()
@@ -292,8 +293,8 @@ def _run_positions(
     *,
     done_before: int,
     total: int,
-    progress: Optional[ProgressFn],
-    cancel: Optional[CancelToken],
+    progress: ProgressFn | None,
+    cancel: CancelToken | None,
 ) -> torch.Tensor:
     """Evaluate logits for every (top, left) pair in batches, reporting progress between them."""
     chunks = []
@@ -338,8 +339,8 @@ def occlusion_map(
     batch_size: int | None = None,
     method: str = "auto",
     refine_tolerance: float = 0.05,
-    progress: Optional[ProgressFn] = None,
-    cancel: Optional[CancelToken] = None,
+    progress: ProgressFn | None = None,
+    cancel: CancelToken | None = None,
 ) -> OcclusionResult:
     """Occlusion sensitivity of ``model`` at ``x`` for class ``target``.
 
@@ -355,7 +356,7 @@ def occlusion_map(
     Returns an :class:`OcclusionResult`; ``drop`` is (H, W) float32.
     """
     x = _check_input(x)
-    _, c, h, w = x.shape
+    _, _, h, w = x.shape
     patch = _as_count(patch, "patch")
     stride = _as_count(stride, "stride")
     if patch > min(h, w):

@@ -226,7 +226,7 @@
   }
 
   function setRunning(running) {
-    $("#run-button").disabled = running;
+    for (const id of ["#run-button", "#faith-button", "#sanity-button"]) $(id).disabled = running;
     $("#cancel-button").disabled = !running;
   }
 
@@ -246,12 +246,19 @@
       showError($("#job-error"), err.message);
       return;
     }
+    status = await track(status, m.name === "occlusion" ? "positions" : "steps");
+    if (status && status.state === "done") {
+      await showResult(status.result_id, true);
+    }
+  }
+
+  // Follow a job in the progress box; returns its final status (or null when polling failed).
+  async function track(status, unit) {
     state.job = status.id;
     setRunning(true);
     const bar = $("#job-bar");
     $("#job-box").hidden = false;
     $("#job-box").dataset.state = status.state;
-    const unit = m.name === "occlusion" ? "positions" : "steps";
     const cached = status.cached;
     try {
       status = await P.followJob(status.id, (s) => {
@@ -262,15 +269,13 @@
       });
     } catch (err) {
       showError($("#job-error"), err.message);
+      status = null;
     } finally {
       setRunning(false);
       state.job = null;
     }
-    if (status && status.state === "done") {
-      await showResult(status.result_id, true);
-    } else if (status && status.state === "failed") {
-      showError($("#job-error"), status.error);
-    }
+    if (status && status.state === "failed") showError($("#job-error"), status.error);
+    return status;
   }
 
   async function cancelJob() {
@@ -316,10 +321,83 @@
     warning.textContent = r.warning || "";
     warning.hidden = !r.warning;
     $("#result-view").hidden = false;
-    if (addToStrip && !state.results.find((x) => x.id === r.id)) {
-      state.results.push(r);
-      renderStrip();
+    renderChecks(r);
+    const known = state.results.findIndex((x) => x.id === r.id);
+    if (known >= 0) state.results[known] = r;
+    else if (addToStrip) state.results.push(r);
+    renderStrip();
+    await renderRanking();
+  }
+
+  function renderChecks(r) {
+    const faith = clear($("#faith-out"));
+    if (r.faithfulness) {
+      const f = r.faithfulness;
+      const del = f.curves.deletion, ins = f.curves.insertion;
+      faith.append(el("p", {}, [
+        el("span", { class: "key-first", text: `deletion area ${fmt(f.deletion_auc, 3)}` }), " · ",
+        el("span", { class: "key-second", text: `insertion area ${fmt(f.insertion_auc, 3)}` }),
+        ` (${fmtInt(f.n_forwards)} forward passes)`,
+      ]));
+      const yMax = Math.max(1e-6, ...del.scores, ...ins.scores);
+      const chart = P.lineChart([
+        { label: "deletion", xs: del.fractions, ys: del.scores },
+        { label: "insertion", xs: ins.fractions, ys: ins.scores, cls: "second" },
+      ], { xLabel: "fraction of pixels removed / restored", yLabel: "probability", yMax });
+      chart.setAttribute("aria-label", `Deletion and insertion curves: areas ${fmt(f.deletion_auc, 3)} and ${fmt(f.insertion_auc, 3)}`);
+      chart.id = "faith-chart";
+      faith.append(chart);
     }
+    const sanity = clear($("#sanity-out"));
+    if (r.sanity) {
+      const sc = r.sanity;
+      sanity.append(el("p", { id: "sanity-verdict" }, [
+        el("span", { class: sc.verdict === "pass" ? "verdict-pass" : "verdict-fail",
+                     text: sc.verdict === "pass" ? "Passes the check" : "Fails the check" }),
+        ": " + sc.reason,
+      ]));
+      const steps = sc.steps;
+      const xs = steps.map((_, i) => i + 1);
+      const series = [{ label: "Spearman", xs, ys: steps.map((s) => s.spearman) }];
+      if (steps.every((s) => s.ssim !== null)) series.push({ label: "SSIM", xs, ys: steps.map((s) => s.ssim), cls: "second" });
+      const chart = P.lineChart(series, { xLabel: "layers randomised, from the top", yLabel: "similarity to the trained map",
+                                          xMax: Math.max(1, steps.length), yMin: -1, yMax: 1 });
+      chart.setAttribute("aria-label", "Similarity of the map to the trained model's map after each randomisation step");
+      sanity.append(chart, el("p", { class: "note" }, [
+        el("span", { class: "key-first", text: "Spearman rank correlation of |map|" }), " · ",
+        el("span", { class: "key-second", text: "SSIM" }), ` · threshold ${sc.threshold}`,
+      ]));
+    }
+  }
+
+  async function renderRanking() {
+    const current = state.result;
+    const scored = state.results.filter((x) => x.faithfulness && current && x.target === current.target);
+    const box = $("#ranking-box");
+    box.hidden = scored.length < 2;
+    if (scored.length < 2) return;
+    const ranking = await api("/api/ranking?" + scored.map((x) => "results=" + x.id).join("&"));
+    const body = clear($("#ranking tbody"));
+    for (const row of ranking.rows) {
+      body.append(el("tr", {}, [
+        el("td", { class: "num", text: row.combined_rank }), el("td", { text: row.title }),
+        el("td", { class: "num", text: fmt(row.deletion_auc, 3) }), el("td", { class: "num", text: fmt(row.insertion_auc, 3) }),
+      ]));
+    }
+  }
+
+  async function check(kind) {
+    if (!state.result) return;
+    showError($("#job-error"), "");
+    let status;
+    try {
+      status = await api(`/api/results/${state.result.id}/${kind}`, { method: "POST" });
+    } catch (err) {
+      showError($("#job-error"), err.message);
+      return;
+    }
+    status = await track(status, kind === "sanity" ? "randomisation steps" : "steps");
+    if (status && status.state === "done") await showResult(status.result_id, false);
   }
 
   function renderStrip() {
@@ -379,6 +457,8 @@
     $("#method-select").addEventListener("change", showMethod);
     $("#method-form").addEventListener("submit", runMethod);
     $("#cancel-button").addEventListener("click", cancelJob);
+    $("#faith-button").addEventListener("click", () => check("faithfulness"));
+    $("#sanity-button").addEventListener("click", () => check("sanity"));
 
     P.hoverReadout($("#channel-stack"), () => state.channelValues, (row, col, v) => {
       $("#channel-readout").textContent = v === null ? "Point at the map to read the activation there."

@@ -36,6 +36,8 @@ const P = (() => {
       else if (key === "class") node.className = value;
       else if (key.startsWith("on")) node.addEventListener(key.slice(2), value);
       else if (key === "dataset") Object.assign(node.dataset, value);
+      // Through the CSSOM: the server's content security policy refuses style attributes in markup.
+      else if (key === "style") node.style.cssText = value;
       else node.setAttribute(key, value === true ? "" : value);
     }
     for (const child of [].concat(children)) {
@@ -165,9 +167,49 @@ const P = (() => {
     return out;
   }
 
+  // A small line chart as inline SVG: series = [{label, xs, ys, cls}], axes from 0 to the given maxima.
+  function lineChart(series, { xLabel = "", yLabel = "", xMax = 1, yMin = 0, yMax = 1, width = 320, height = 180 } = {}) {
+    const ns = "http://www.w3.org/2000/svg";
+    const make = (tag, attrs) => {
+      const node = document.createElementNS(ns, tag);
+      for (const [k, v] of Object.entries(attrs)) node.setAttribute(k, v);
+      return node;
+    };
+    const m = { l: 40, r: 10, t: 10, b: 34 };
+    const w = width - m.l - m.r, h = height - m.t - m.b;
+    const sx = (x) => m.l + (w * x) / xMax;
+    const sy = (y) => m.t + h - (h * (y - yMin)) / (yMax - yMin || 1);
+    const svg = make("svg", { viewBox: `0 0 ${width} ${height}`, width, height, class: "chart", role: "img" });
+    svg.append(make("rect", { x: m.l, y: m.t, width: w, height: h, class: "chart-frame" }));
+    for (let i = 0; i <= 4; i++) {
+      const yv = yMin + ((yMax - yMin) * i) / 4, xv = (xMax * i) / 4;
+      const ty = make("text", { x: m.l - 4, y: sy(yv) + 3, class: "chart-tick", "text-anchor": "end" });
+      ty.textContent = Number(yv.toFixed(2));
+      const tx = make("text", { x: sx(xv), y: m.t + h + 12, class: "chart-tick", "text-anchor": "middle" });
+      tx.textContent = Number(xv.toFixed(2));
+      svg.append(ty, tx);
+    }
+    const xl = make("text", { x: m.l + w / 2, y: height - 4, class: "chart-label", "text-anchor": "middle" });
+    xl.textContent = xLabel;
+    const yl = make("text", { x: 10, y: m.t + h / 2, class: "chart-label", "text-anchor": "middle",
+                              transform: `rotate(-90 10 ${m.t + h / 2})` });
+    yl.textContent = yLabel;
+    svg.append(xl, yl);
+    const legend = [];
+    for (const s of series) {
+      const points = s.xs.map((x, i) => `${sx(x).toFixed(1)},${sy(s.ys[i]).toFixed(1)}`).join(" ");
+      svg.append(make("polyline", { points, class: "chart-line " + (s.cls || "") }));
+      legend.push(s.label);
+    }
+    const title = make("title", {});
+    title.textContent = legend.join("; ");
+    svg.prepend(title);
+    return svg;
+  }
+
   function remember(key, value) { try { localStorage.setItem("pellucid." + key, value); } catch (_) { /* private mode */ } }
   function recall(key) { try { return localStorage.getItem("pellucid." + key); } catch (_) { return null; } }
 
   return { api, el, $, clear, fmt, fmtInt, fmtSeconds, showError, fillSelect, hoverReadout, followJob,
-           progressText, paramInputs, readParams, remember, recall };
+           progressText, paramInputs, readParams, remember, recall, lineChart };
 })();

@@ -304,6 +304,40 @@ def test_shared_scale_for_compare(client) -> None:
     _assert_plain_error(client.get("/api/scale", params=[("results", r1), ("results", unsigned)]), 422, "signed")
 
 
+def test_faithfulness_sanity_and_ranking(client) -> None:
+    image = _image_id(client)
+    occ = _run(client, image, params={"patch": 8, "stride": 4}, target=1)["result_id"]
+    sal = _run(client, image, method="saliency", target=1)["result_id"]
+    _assert_plain_error(client.get("/api/ranking", params=[("results", occ), ("results", sal)]), 422,
+                        "faithfulness first")
+    for rid in (occ, sal):
+        r = client.post(f"/api/results/{rid}/faithfulness")
+        assert r.status_code == 202 and _wait(client, r.json()["id"])["state"] == "done"
+    body = client.get(f"/api/results/{occ}").json()
+    curves = body["faithfulness"]["curves"]
+    # The deletion curve starts from the whole image, so its first score is the model's probability for the
+    # target. Source: Petsiuk, Das, Saenko, RISE: Randomized Input Sampling for Explanation of Black-box
+    # Models, BMVC 2018, the deletion metric (section number from memory, not checked).
+    with torch.inference_mode():
+        p = torch.softmax(_module(client)(_tensor(client, image)), dim=1)[0, 1].item()
+    assert curves["deletion"]["scores"][0] == pytest.approx(p, abs=1e-5)
+    assert curves["deletion"]["fractions"][0] == 0.0 and curves["deletion"]["fractions"][-1] == 1.0
+    again = client.post(f"/api/results/{occ}/faithfulness").json()
+    assert again["cached"] is True
+    ranking = client.get("/api/ranking", params=[("results", occ), ("results", sal)]).json()["rows"]
+    assert sorted(r["method"] for r in ranking) == ["occlusion", "saliency"]
+    assert [r["combined_rank"] for r in ranking] == sorted(r["combined_rank"] for r in ranking)
+
+    r = client.post(f"/api/results/{sal}/sanity")
+    assert _wait(client, r.json()["id"])["state"] == "done"
+    sanity = client.get(f"/api/results/{sal}").json()["sanity"]
+    assert sanity["verdict"] in ("pass", "fail") and len(sanity["steps"]) >= 1
+    _assert_plain_error(client.post("/api/results/feedbeef/sanity"), 404, "feedbeef")
+    other = _run(client, image, method="saliency", target=2)["result_id"]
+    client.post(f"/api/results/{other}/faithfulness")
+    _assert_plain_error(client.get("/api/ranking", params=[("results", occ), ("results", other)]), 422, "same")
+
+
 # --- error paths: a plain 4xx sentence each, and the server keeps serving ----------------------
 
 

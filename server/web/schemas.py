@@ -303,6 +303,12 @@ class ResultResponse(BaseModel):
     colorbar: str
     values: list[list[float]] = Field(description="(H, W) map values at input resolution, for the hover read-out")
     caution: str = CAUTION
+    faithfulness: dict[str, Any] | None = Field(None, description="deletion/insertion curves and AUCs, once scored")
+    sanity: dict[str, Any] | None = Field(None, description="cascading-randomisation verdict and steps, once run")
+
+
+class Ranking(BaseModel):
+    rows: list[dict[str, Any]] = Field(description="best first: deletion AUC (lower better), insertion AUC (higher)")
 
 
 class SharedScale(BaseModel):

@@ -44,6 +44,8 @@ class ResultRecord:
     amap: Any
     display: np.ndarray
     created: float = field(default_factory=time.time)
+    faithfulness: dict | None = None  # deletion / insertion curves and AUCs, once scored
+    sanity: dict | None = None  # cascading-randomisation verdict and steps, once checked
 
 
 class _Lru:

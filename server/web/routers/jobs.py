@@ -15,14 +15,22 @@ from fastapi import APIRouter, Depends, Query
 from fastapi.responses import Response
 
 from ...core import render
-from ...core.attribution import Normalization, compute_attribution, get_method, list_methods
+from ...core.attribution import (
+    Normalization,
+    compute_attribution,
+    faithfulness,
+    get_method,
+    list_methods,
+    rank_methods,
+    sanity_check,
+)
 from ...core.cache import result_key
 from ...core.errors import BadParameterError, NotFoundError
 from ...core.jobs import Job
 from ...core.models import LoadedModel
 from ...core.probe import find_layer
 from ..deps import get_workspace
-from ..schemas import CAUTION, JobRequest, JobStatus, MethodList, ResultResponse, SharedScale
+from ..schemas import CAUTION, JobRequest, JobStatus, MethodList, Ranking, ResultResponse, SharedScale
 from ..workspace import ResultRecord, Workspace
 from ._media import data_url, rounded_rows
 
@@ -188,6 +196,7 @@ def get_result(
         image_png=data_url(render.encode_png(record.display)), map_png=data_url(render.encode_png(coloured)),
         colorbar=data_url(render.colorbar_png(vmin=lo, vmax=hi, cmap=cmap, label=label[:80])),
         values=rounded_rows(amap.map, digits=4), caution=CAUTION,
+        faithfulness=record.faithfulness, sanity=record.sanity,
     )
 
 
@@ -220,3 +229,67 @@ def shared_scale(results: list[str] = Query(..., description="result ids"),
     stacked = np.concatenate([r.amap.map.ravel() for r in records])
     lo, hi = magnitude_range(stacked, signed=is_signed)
     return SharedScale(results=list(results), signed=is_signed, vmin=lo, vmax=hi)
+
+
+def _follow_up(ws: Workspace, result_id: str, kind: str, compute) -> JobStatus:
+    """A job that adds ``kind`` (faithfulness or sanity) to a stored result; served at once when present."""
+    record = ws.result(result_id)
+    meta = {"result_id": record.id, "model": record.model, "image": record.image, "method": record.method}
+    description = f"{kind} of {record.title} · {record.model} · {record.image_name}"
+    if getattr(record, kind) is not None:
+        return job_status(ws.jobs.submit(kind, lambda progress, cancel: record.id, description=description,
+                                         meta=meta), cached=True)
+    lm = ws.model(record.model)
+    if lm.fingerprint != record.fingerprint:
+        raise NotFoundError(f"model {record.model!r} changed since this result was made; compute the map again")
+    prep = ws.prepared(lm, record.image)
+
+    def run(progress, cancel) -> str:
+        setattr(record, kind, compute(lm, prep, record, progress, cancel))
+        return record.id
+
+    return job_status(ws.jobs.submit(kind, run, description=description, meta=meta))
+
+
+@router.post("/results/{result_id}/faithfulness", response_model=JobStatus, status_code=202,
+             summary="Score a map by its deletion and insertion curves (a job)")
+def start_faithfulness(result_id: str, ws: Workspace = Depends(get_workspace)) -> JobStatus:
+    def compute(lm, prep, record, progress, cancel) -> dict:
+        res = faithfulness(lm.module, prep.tensor, record.amap.map, target=record.target,
+                           output_kind=lm.output_kind, progress=progress, cancel=cancel)
+        return res.to_dict()
+
+    return _follow_up(ws, result_id, "faithfulness", compute)
+
+
+@router.post("/results/{result_id}/sanity", response_model=JobStatus, status_code=202,
+             summary="Cascading randomisation of the weights: does the map depend on them? (a job)")
+def start_sanity(result_id: str, ws: Workspace = Depends(get_workspace)) -> JobStatus:
+    def compute(lm, prep, record, progress, cancel) -> dict:
+        spec = lm.spec
+        res = sanity_check(
+            record.method, lm.module, prep.tensor, target=record.target, params=record.amap.params,
+            output_kind=lm.output_kind, normalization=Normalization.of(spec.preprocess.mean, spec.preprocess.std),
+            progress=progress, cancel=cancel,
+        )
+        return res.to_dict()
+
+    return _follow_up(ws, result_id, "sanity", compute)
+
+
+@router.get("/ranking", response_model=Ranking, summary="Rank scored maps of one image and target by faithfulness")
+def get_ranking(results: list[str] = Query(..., description="result ids, all scored for faithfulness"),
+                ws: Workspace = Depends(get_workspace)) -> Ranking:
+    records = [ws.result(r) for r in results]
+    if len({(r.fingerprint, r.image, r.target) for r in records}) > 1:
+        raise BadParameterError("rank only maps of the same model, image and target class")
+    unscored = [r.id for r in records if r.faithfulness is None]
+    if unscored:
+        raise BadParameterError(f"score these maps for faithfulness first: {', '.join(unscored)}")
+    rows = rank_methods({r.id: r.faithfulness for r in records})
+    by_id = {r.id: r for r in records}
+    for row in rows:
+        row["result_id"] = row["method"]
+        row["method"] = by_id[row["result_id"]].method
+        row["title"] = by_id[row["result_id"]].title
+    return Ranking(rows=rows)

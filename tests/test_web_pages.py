@@ -51,7 +51,9 @@ def test_static_files_are_served_and_reference_nothing_outside() -> None:
     for folder in (REPO / "static", REPO / "templates"):
         for f in folder.rglob("*"):
             if f.suffix in (".js", ".css", ".html"):
-                hits = [m.group(0) for m in pattern.finditer(f.read_text(encoding="utf-8"))]
+                # The SVG namespace is a name, never fetched.
+                text = f.read_text(encoding="utf-8").replace('"http://www.w3.org/2000/svg"', '""')
+                hits = [m.group(0) for m in pattern.finditer(text)]
                 assert not hits, (f.name, hits)
 
 

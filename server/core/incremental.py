@@ -208,7 +208,7 @@ class IncrementalOcclusion:
         self.dependent = self._dependent_nodes()
         self.kinds = {n: self._classify(n) for n in self.nodes}
         self._last_use = self._last_uses()
-        self._padded: dict[tuple[Any, ...], torch.Tensor] = {}
+        self._padded: dict[tuple[Any, ...], tuple[torch.Tensor, tuple[int, int, int, int]]] = {}
         self.h, self.w = x.shape[2], x.shape[3]
         self.estimated_speedup, self.ideal_speedup, self.conv_macs = self._estimate()
         if self_check:
@@ -556,8 +556,7 @@ class IncrementalOcclusion:
                 kind = self.kinds[n]
                 pl = plans[n]
                 if kind.tag == "input":
-                    patch = _crop(self._padded_base(self.base, "base", (0, 0, 0, 0), 0.0), tn, ln,
-                                  self.patch, self.patch, (0, 0))
+                    patch = _crop(self.base[0], tn, ln, self.patch, self.patch, (0, 0))
                     states[n] = _Win(patch, tn, ln)
                 elif kind.tag == "output":
                     break
@@ -601,14 +600,20 @@ class IncrementalOcclusion:
         kwargs = fx.node.map_arg(n.kwargs, sub)
         return self._call(n, args, kwargs)
 
-    def _padded_base(self, t: torch.Tensor, key: Any, pads: tuple[int, int, int, int], fill: float) -> torch.Tensor:
-        """The (C, H + pads, W + pads) map padded with ``fill``, cached per node, padding and fill."""
-        k = (key, pads, fill)
+    def _padded_base(self, t: torch.Tensor, key: Any, pads: tuple[int, int, int, int],
+                     fill: float) -> tuple[torch.Tensor, tuple[int, int, int, int]]:
+        """(C, H', W') copy of the (1, C, H, W) map padded with ``fill`` by at least ``pads``
+        (top, bottom, left, right), and the padding it actually has. One copy per node and fill,
+        grown when a later batch needs more; the needs are bounded by the layer's own padding."""
+        k = (key, fill)
         got = self._padded.get(k)
-        if got is None:
-            got = F.pad(t, (pads[2], pads[3], pads[0], pads[1]), value=fill)[0] if any(pads) else t[0]
-            self._padded[k] = got
-        return got
+        if got is not None and all(a >= b for a, b in zip(got[1], pads)):
+            return got
+        if got is not None:
+            pads = tuple(max(a, b) for a, b in zip(got[1], pads))  # type: ignore[assignment]
+        tensor = F.pad(t, (pads[2], pads[3], pads[0], pads[1]), value=fill)[0] if any(pads) else t[0]
+        self._padded[k] = (tensor, pads)
+        return tensor, pads
 
     def _view(self, node: fx.Node, state: Any, rs: np.ndarray, cs: np.ndarray, hv: int, wv: int,
               fill: float) -> torch.Tensor:
@@ -621,8 +626,8 @@ class IncrementalOcclusion:
         hh, ww = cached.shape[2], cached.shape[3]
         pads = (max(0, -int(rs.min())), max(0, int(rs.max()) + hv - hh),
                 max(0, -int(cs.min())), max(0, int(cs.max()) + wv - ww))
-        base = self._padded_base(cached, node, pads, fill)
-        out = _crop(base, rs, cs, hv, wv, (pads[0], pads[2]))
+        base, have = self._padded_base(cached, node, pads, fill)
+        out = _crop(base, rs, cs, hv, wv, (have[0], have[2]))
         if isinstance(state, _Win):
             _paste(out, state, rs, cs)
         return out

@@ -494,7 +494,11 @@ def _choose_engine(
         else:
             if method == "incremental" or engine.worthwhile:
                 bs = batch_size or engine.default_batch(*grid_shape)
-                return "incremental", engine.logits, bs, {"estimated_speedup": engine.estimated_speedup}
+                return "incremental", engine.logits, bs, {
+                    "estimated_speedup": engine.estimated_speedup,
+                    "ideal_speedup": engine.ideal_speedup,
+                    "self_check_positions": 3,
+                }
             reason = f"estimated speedup {engine.estimated_speedup:.2f}× is too small"
         details = {"incremental_skipped": reason}
     else:

@@ -401,7 +401,9 @@ def build_demo_model(
         check = make_split("clean", per_class=settings.check_per_class, seed=seed + 2)
         state = {k: v.detach().clone().contiguous() for k, v in model.state_dict().items()}
         weights = out / "tilenet.safetensors"
-        save_file(state, str(weights), metadata={"variant": variant, "seed": str(seed)})
+        # One metadata key only: safetensors writes a map's keys in no fixed order, which would make
+        # the bytes (and so the fingerprint) of identical weights differ between rebuilds.
+        save_file(state, str(weights), metadata={"pellucid_demo": f"variant={variant} seed={seed}"})
         metrics = {
             "model": _NAMES[variant],
             "variant": variant,

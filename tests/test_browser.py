@@ -124,6 +124,7 @@ def test_model_page_shows_kernel_grid_and_layer_map(live_server: str, page) -> N
     page.wait_for_function("document.body.dataset.ready === 'true'")
     grid = page.locator("#kernel-grid")
     grid.wait_for(state="visible")
+    assert not page.locator("#kernel-colorbar").is_visible()  # the RGB grid has no colour bar
     assert page.evaluate("document.querySelector('#kernel-grid').naturalWidth") > 0
     assert page.locator("#kernel-layer").input_value() == "features.conv1"
     rows = page.locator("#layer-table tbody tr")
@@ -142,6 +143,7 @@ def test_model_page_shows_kernel_grid_and_layer_map(live_server: str, page) -> N
 def test_image_page_evidence_flow(live_server: str, page, demo_tile: Path) -> None:
     page.goto(live_server + "/image")
     page.wait_for_function("document.body.dataset.ready === 'true'")
+    assert not page.locator("#job-box").is_visible() and not page.locator("#result-view").is_visible()
     page.set_input_files("#file-input", str(demo_tile))
 
     # Top-k as labelled bars with numbers.
@@ -162,8 +164,7 @@ def test_image_page_evidence_flow(live_server: str, page, demo_tile: Path) -> No
     page.locator("#act-grid").click(position={"x": 6, "y": 6})  # inside the first cell
     page.locator("#channel-view").wait_for(state="visible")
     assert "channel" in page.locator("#channel-title").inner_text()
-    cbox = page.locator("#channel-stack").bounding_box()
-    page.mouse.move(cbox["x"] + cbox["width"] / 2, cbox["y"] + cbox["height"] / 2)
+    page.locator("#channel-stack").hover()  # the centre
     page.wait_for_function("document.querySelector('#channel-readout').innerText.includes('activation')")
     _shot(page, "image-features")
 
@@ -178,7 +179,7 @@ def test_image_page_evidence_flow(live_server: str, page, demo_tile: Path) -> No
     assert page.locator("#result-engine").inner_text().strip()
     assert page.locator("#result-map").get_attribute("src").startswith("data:image/png")
     rbox = page.locator("#result-stack").bounding_box()
-    page.mouse.move(rbox["x"] + rbox["width"] * 0.8, rbox["y"] + rbox["height"] * 0.8)
+    page.locator("#result-stack").hover(position={"x": rbox["width"] * 0.8, "y": rbox["height"] * 0.8})
     page.wait_for_function("document.querySelector('#result-readout').innerText.includes('probability drop')")
     page.fill("#result-opacity", "0.3")
     page.dispatch_event("#result-opacity", "input")

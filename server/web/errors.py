@@ -43,7 +43,45 @@ def _plain_validation_message(exc: RequestValidationError) -> str:
     return "invalid request — " + "; ".join(parts)
 
 
+# What every 4xx body looks like; the OpenAPI schema says so instead of FastAPI's default list of
+# validation items (which no response of this app has), so clients and fuzzers read the truth.
+ERROR_BODY_SCHEMA = {
+    "title": "ErrorBody",
+    "type": "object",
+    "required": ["detail", "error"],
+    "properties": {
+        "detail": {"type": "string", "description": "a plain sentence: what was received, what was expected"},
+        "error": {"type": "string", "description": "the kind of error, e.g. BadParameterError"},
+    },
+}
+
+
+def _document_error_bodies(app: FastAPI) -> None:
+    build = app.openapi
+
+    def openapi() -> dict:
+        if app.openapi_schema is not None:
+            return app.openapi_schema
+        schema = build()
+        components = schema.setdefault("components", {}).setdefault("schemas", {})
+        components["HTTPValidationError"] = ERROR_BODY_SCHEMA
+        components["ErrorBody"] = ERROR_BODY_SCHEMA
+        components.pop("ValidationError", None)
+        ref = {"$ref": "#/components/schemas/ErrorBody"}
+        for item in schema.get("paths", {}).values():
+            for operation in item.values():
+                if isinstance(operation, dict) and "responses" in operation:
+                    operation["responses"].setdefault(
+                        "4XX", {"description": "Bad input, or nothing found", "content": {"application/json": {"schema": ref}}}
+                    )
+        return schema
+
+    app.openapi = openapi  # type: ignore[method-assign]
+
+
 def install_error_handlers(app: FastAPI) -> None:
+    _document_error_bodies(app)
+
     @app.exception_handler(E.PellucidError)
     async def _pellucid(_request: Request, exc: E.PellucidError) -> JSONResponse:
         return JSONResponse({"detail": str(exc), "error": type(exc).__name__}, status_code=status_for(exc))

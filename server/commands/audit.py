@@ -188,6 +188,10 @@ def _resolve_method(args: argparse.Namespace, policy: Any) -> None:
         args.target = (policy.target if policy is not None and policy.target else None) or "label"
 
 
+def _interactive() -> bool:
+    return hasattr(sys.stderr, "isatty") and sys.stderr.isatty()
+
+
 class _Phases:
     """One progress bar per phase of the audit."""
 
@@ -195,7 +199,8 @@ class _Phases:
         self.bar: ProgressBar | None = None
 
     def phase(self, name: str) -> None:
-        self.bar = ProgressBar(f"{name:>15}")
+        # Bars only on a terminal: in logs and pipes stderr stays for errors (one line each).
+        self.bar = ProgressBar(f"{name:>15}") if _interactive() else None
 
     def __call__(self, done: int, total: int) -> None:
         if self.bar is not None:
@@ -218,17 +223,19 @@ def _audit(args: argparse.Namespace) -> int:
         raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")
     policy = load_policy(args.policy) if args.policy else None
     _resolve_method(args, policy)
+    # Fail on a wrong method or parameter before reading any file.
+    settings = AuditSettings(method=args.method, params=_params(args.param), target=args.target,
+                             shard_size=args.shard_size, threads=args.threads).validated()
     store = Store(args.store or default_data_dir())
     try:
         model = load_model(resolve_model_ref(args.model), trust_pickled=args.trust_pickled)
-        dataset = load_dataset(args.data, progress=ProgressBar("  reading files"))
+        phases = _Phases()
+        phases.phase("reading files")
+        dataset = load_dataset(args.data, progress=phases)
         for s in dataset.skipped:
             print(f"skipped {s.rel}: {s.reason}", file=sys.stderr)
-        settings = AuditSettings(method=args.method, params=_params(args.param), target=args.target,
-                                 shard_size=args.shard_size, threads=args.threads)
         injection = build_injection(args, model, policy)
         gallery = GallerySpec(layer=args.gallery_layer, top=args.gallery_top) if args.gallery_layer else None
-        phases = _Phases()
         if store.recovered:
             print(f"marked {len(store.recovered)} run(s) left running by a stopped process as interrupted: "
                   + ", ".join(store.recovered), file=sys.stderr)

@@ -266,7 +266,7 @@ def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]
         verdict.append(("text", (f"Gate: {'PASS' if g.passed else 'FAIL'} under policy {g.policy.name!r} "
                                 f"({len(g.failures)} of {len(g.checks)} checks failed; policy sha256 "
                                 f"{g.policy.sha256}).")))
-        verdict.append(("checks", [(c.status, c.sentence, c.to_dict()["meaning"]) for c in g.checks]))
+        verdict.append(("checks", [(c.status, c.key, c.sentence, c.to_dict()["meaning"]) for c in g.checks]))
     else:
         verdict.append(("text", "No policy was given, so this report shows the measures without a pass/fail verdict."))
     flags = s.get("class_flags", [])
@@ -445,9 +445,11 @@ def render_html(content: ReportContent) -> str:
                 parts.append(_table(head, rows))
             elif kind == "checks":
                 rows = "".join(
-                    f"<tr><td class='{ 'na' if st == 'n/a' else st }'>{_e(st.upper())}</td><td>{_e(sentence)}</td>"
-                    f"<td class='meaning'>{_e(meaning)}</td></tr>" for st, sentence, meaning in payload)
-                parts.append("<table><thead><tr><th scope='col'>result</th><th scope='col'>check</th>"
+                    f"<tr><td class='{ 'na' if st == 'n/a' else st }'>{_e(st.upper())}</td><td class='mono'>{_e(key)}</td>"
+                    f"<td>{_e(sentence)}</td><td class='meaning'>{_e(meaning)}</td></tr>"
+                    for st, key, sentence, meaning in payload)
+                parts.append("<table><thead><tr><th scope='col'>result</th><th scope='col'>policy key</th>"
+                             "<th scope='col'>check</th>"
                              f"<th scope='col'>what it measures</th></tr></thead><tbody>{rows}</tbody></table>")
             elif kind == "figure":
                 png = _fig_png(content.figures[payload])
@@ -536,7 +538,7 @@ def render_pdf(content: ReportContent, path: Path) -> int:
                 lines.append(("m", " | ".join(map(str, head))))
                 lines += [("m", " | ".join(map(str, r))) for r in rows]
             elif kind == "checks":
-                lines += [("p", f"[{st.upper()}] {sentence}") for st, sentence, _ in payload]
+                lines += [("p", f"[{st.upper()}] {key}: {sentence}") for st, key, sentence, _ in payload]
             elif kind == "figure":
                 lines.append(("p", f"(figure: {payload}, on a page of its own)"))
                 figure_pages.append(content.figures[payload])

@@ -227,7 +227,7 @@ def feature_visual(
                     value = activation(to_model(img), probe)
                     (-value).backward()
                     opt.step()
-                    objective.append(float(value))
+                    objective.append(float(value.detach()))
                     if blur_sigma and parameterisation == "pixel" and (i + 1) % blur_every == 0:
                         with torch.no_grad():
                             param.copy_(_blur(param, float(blur_sigma)))

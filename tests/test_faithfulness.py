@@ -172,3 +172,15 @@ def test_gradcam_on_tagged_demo_tile_beats_a_random_map():
     good = faithfulness(model, x, amap.map, target=amap.target, kinds=("deletion",))
     base = faithfulness(model, x, rand, target=amap.target, kinds=("deletion",))
     assert good.deletion_auc < base.deletion_auc
+
+
+def test_blocks_change_together_and_block_is_validated():
+    from server.core.attribution.faithfulness import _block_means
+
+    sal = np.arange(16, dtype=np.float64).reshape(4, 4)
+    means = _block_means(sal, 2)
+    assert means[0, 0] == means[1, 1] == np.mean([0, 1, 4, 5]) and means[3, 3] == np.mean([10, 11, 14, 15])
+    assert _block_means(sal, 1) is sal
+    model = nn.Sequential(nn.Flatten(), nn.Linear(16, 2)).eval()
+    with pytest.raises(BadParameterError, match="block must be an integer from 1 to 4"):
+        faithfulness(model, torch.zeros(1, 1, 4, 4), sal, block=5)

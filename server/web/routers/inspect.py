@@ -8,8 +8,8 @@ import numpy as np
 from fastapi import APIRouter, Depends
 
 from ...core import render
-from ...core.activations import activation_maps
-from ...core.errors import BadParameterError
+from ...core.activations import activation_maps, activations_with_prediction
+from ...core.errors import BadParameterError, PellucidError
 from ...core.predict import predict
 from ..deps import get_workspace
 from ..schemas import (
@@ -33,12 +33,29 @@ _SORTS = ("index", "mean", "max")
 def post_predict(body: PredictRequest, ws: Workspace = Depends(get_workspace)) -> PredictResponse:
     lm = ws.model(body.model)
     prep = ws.prepared(lm, body.image)
-    pred = predict(lm.module, prep.tensor, labels=lm.labels, output_kind=lm.output_kind, k=body.k)
+    layer = _default_layer(ws, lm)
+    if layer is None:
+        pred = predict(lm.module, prep.tensor, labels=lm.labels, output_kind=lm.output_kind, k=body.k)
+    else:
+        # The page asks for the default layer's maps next: one hooked pass serves both requests.
+        acts, pred = activations_with_prediction(lm.module, prep.tensor, layer=layer, labels=lm.labels,
+                                                 output_kind=lm.output_kind, k=body.k)
+        ws.cache.put(("activations", lm.fingerprint, body.image, layer), acts)
     return PredictResponse(
         model=lm.name, fingerprint=lm.fingerprint, image=body.image, output_kind=pred.output_kind,
         top=[ClassScoreOut(**vars(c)) for c in pred.top], margin=pred.margin,
         entropy_bits=pred.entropy_bits, seconds=pred.seconds,
     )
+
+
+def _default_layer(ws: Workspace, lm) -> str | None:
+    """The layer the image page shows first (the last conv layer), or None without hooks."""
+    if not lm.supports_hooks:
+        return None
+    try:
+        return ws.layer_map(lm).last_conv().name
+    except PellucidError:
+        return None
 
 
 def _maps(ws: Workspace, model: str | None, image: str, layer: str):

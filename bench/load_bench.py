@@ -198,6 +198,8 @@ def run_load(*, clients: int = 20, requests: int = 50, spec: Path = DEMO_SPEC, w
                         tally.done += 1
                         if tally.done == early:
                             marks["early"] = rss_kib(server.proc.pid)
+                        if tally.done == 500 and total > 500:
+                            marks["500"] = rss_kib(server.proc.pid)
 
         t_start = time.perf_counter()
         threads = [threading.Thread(target=worker, args=(k,), daemon=True) for k in range(clients)]
@@ -227,7 +229,8 @@ def run_load(*, clients: int = 20, requests: int = 50, spec: Path = DEMO_SPEC, w
         "latency": {kind: {"n": len(v), "p50": pct(v, 0.5), "p95": pct(v, 0.95),
                            "mean": statistics.fmean(v) if v else None}
                     for kind, v in {**tally.latencies, "all": every}.items()},
-        "rss_kib": {"after_setup": rss_start, f"after_{early}": rss_early, f"after_{tally.done}": rss_end},
+        "rss_kib": {"after_setup": rss_start, f"after_{early}": rss_early,
+                    **({"after_500": marks["500"]} if "500" in marks else {}), f"after_{tally.done}": rss_end},
         "rss_growth": (rss_end - rss_early) / rss_early,
         "cached_results_at_end": status["cached_results"],
         "spec": str(spec.relative_to(REPO) if spec.is_relative_to(REPO) else spec),

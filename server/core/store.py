@@ -530,6 +530,11 @@ class Store:
 
         self._write(save)
 
+    def add_artefacts(self, run_id: str, artefacts: dict[str, str]) -> None:
+        """Attach stored artefacts to a run under names (replacing a name already there)."""
+        self._write(lambda db: [db.execute("INSERT OR REPLACE INTO run_artefacts (run_id, name, hash) VALUES (?, ?, ?)",
+                                           (run_id, name, digest)) for name, digest in artefacts.items()])
+
     def run_artefacts(self, run_id: str) -> dict[str, str]:
         with self._lock:
             rows = self._db.execute("SELECT name, hash FROM run_artefacts WHERE run_id=? ORDER BY name",

@@ -60,4 +60,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(jobs.router)
     app.include_router(pages.router)
     app.include_router(docs.router)
+    from .routers import audits
+
+    app.include_router(audits.router)
     return app

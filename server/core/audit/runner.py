@@ -34,7 +34,7 @@ from .injection import background_swap_test, injection_test
 from .settings import AuditSettings, GallerySpec, InjectionSpec
 from .worker import ShardTask
 
-__all__ = ["CAUTION", "AuditOutcome", "run_audit", "run_settings"]
+__all__ = ["CAUTION", "AuditOutcome", "run_audit", "run_settings", "stored_inputs"]
 
 CAUTION = (
     "Attribution maps are evidence about this model on these images, not proof of what it has learned or "
@@ -197,6 +197,8 @@ def run_audit(
             dataset_hash=dataset.hash, method=settings.method, settings=record, tool_version=__version__,
             command=command, total=len(items), dataset=dataset.summary())
     run = store.set_status(run.id, RUNNING)
+    if injection is not None:  # kept from the start, so an interrupted run can be resumed from the store alone
+        store.add_artefacts(run.id, {"injection/patch": store.put_bytes(encode_png(injection.patch), "png")})
     if on_run is not None:
         on_run(run)
 
@@ -251,7 +253,6 @@ def run_audit(
             phase("injection")
             res = injection_test(model, items, injection, progress=progress, cancel=cancel)
             summary["injection"] = res.to_dict()
-            artefacts["injection/patch"] = store.put_bytes(encode_png(injection.patch), "png")
             for n, (rel, (before, after)) in enumerate(res.pictures.items()):
                 artefacts[f"injection/example/{n}/before"] = store.put_bytes(encode_png(before), "png")
                 artefacts[f"injection/example/{n}/after"] = store.put_bytes(encode_png(after), "png")
@@ -300,3 +301,24 @@ def run_audit(
     return AuditOutcome(run=run, summary=summary, resumed=resumed, reused=reused, computed=computed,
                         seconds=time.perf_counter() - started,
                         images_per_second=summary["timing"]["images_per_second"])
+
+
+def stored_inputs(store: Store, run: RunRecord) -> tuple[AuditSettings, InjectionSpec | None, GallerySpec | None, bool]:
+    """The settings a stored run was started with, rebuilt so that it can be resumed."""
+    import io
+
+    from PIL import Image
+
+    record = run.settings
+    settings = AuditSettings.from_dict(record["audit"])
+    injection = None
+    if record.get("injection"):
+        inj = record["injection"]
+        digest = store.run_artefacts(run.id).get("injection/patch")
+        if digest is None:
+            raise DataError(f"run {run.id} has lost its injection patch; start a new run instead")
+        patch = np.asarray(Image.open(io.BytesIO(store.get_bytes(digest))).convert("RGB"), dtype=np.uint8).copy()
+        injection = InjectionSpec(patch=patch, suspect_class=inj["suspect_class"], at=tuple(inj["at"]),
+                                  source=inj.get("source", "given"), limit=inj.get("limit"))
+    gallery = GallerySpec(**record["gallery"]) if record.get("gallery") else None
+    return settings, injection, gallery, bool(record.get("background_swap"))

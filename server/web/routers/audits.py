@@ -1,0 +1,483 @@
+"""Folder audits over HTTP: start one as a job, follow and cancel it, and read the stored runs.
+
+Thin: every computation is :func:`server.core.audit.run_audit` and the store's own queries. The
+store lives in the server's data folder (``Settings.data_dir``) and opens on first use; a data
+folder that cannot be used answers 503 with the store's message.
+
+Datasets come from two places only: the demo tile generator (written into the data folder) or a
+folder inside the server's image root, so a request cannot make the server read arbitrary paths.
+"""
+
+from __future__ import annotations
+
+import base64
+import binascii
+import tempfile
+import threading
+import time
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+from fastapi import APIRouter, Depends, Query, Request
+from fastapi.responses import HTMLResponse, Response
+from pydantic import BaseModel, Field
+
+from ... import __version__
+from ...core import render
+from ...core.audit import (
+    CAUTION,
+    AuditSettings,
+    GallerySpec,
+    InjectionSpec,
+    crop_patch,
+    load_dataset,
+    run_audit,
+)
+from ...core.audit.compare import compare_runs
+from ...core.audit.runner import stored_inputs
+from ...core.bundled import demo_models_dir
+from ...core.errors import BadParameterError, DataError, NotFoundError, PellucidError
+from ...core.layers import conv_layer_names
+from ...core.models import load_model
+from ...core.policy import Policy, evaluate_policy, load_policy
+from ...core.preprocess import prepare, read_image
+from ...core.spec import ModelSpec
+from ...core.store import RESUMABLE, Store
+from ..deps import get_settings, get_workspace
+from ..settings import Settings
+from ..workspace import Workspace, resolve_inside
+from ._media import data_url
+
+api = APIRouter(prefix="/api/audits", tags=["audits"])
+pages = APIRouter(tags=["pages"], include_in_schema=False)
+
+_STORE_LOCK = threading.Lock()
+DEMO_SPLITS = ("clean", "train", "untainted")
+
+
+def get_store(request: Request, settings: Settings = Depends(get_settings)) -> Store:
+    """The app's audit store, opened once (StoreError → 503 with the reason)."""
+    with _STORE_LOCK:
+        store = getattr(request.app.state, "audit_store", None)
+        if store is None:
+            store = Store(settings.data_dir)
+            request.app.state.audit_store = store
+            request.app.state.audit_live = {}
+        return store
+
+
+def _live(request: Request) -> dict[str, dict]:
+    return request.app.state.audit_live
+
+
+# -- requests ---------------------------------------------------------------------------------------
+
+
+class DemoSource(BaseModel):
+    kind: Literal["demo"] = "demo"
+    split: Literal["clean", "train", "untainted"] = Field("clean", description="which demo split to generate")
+    per_class: int = Field(10, ge=1, le=200, description="tiles per class")
+    seed: int = Field(0, ge=0, le=2_147_483_647)
+
+
+class FolderSource(BaseModel):
+    kind: Literal["folder"] = "folder"
+    path: str = Field("", description="folder inside the server's image root (class subfolders or manifest.csv)")
+
+
+class InjectionRequest(BaseModel):
+    kind: Literal["demo_tag", "crop", "upload"] = Field(
+        description="demo_tag: the demo policy's orange tag; crop: cut from an image of the dataset; upload: a PNG")
+    suspect_class: str
+    at: list[int] | None = Field(None, min_length=2, max_length=2,
+                                 description="top-left (x, y) in model-input pixels; default: the crop's own place")
+    image: str | None = Field(None, description="for crop: the image's path relative to the dataset root")
+    box: list[int] | None = Field(None, min_length=4, max_length=4, description="for crop: x0, y0, x1, y1")
+    patch_png: str | None = Field(None, description="for upload: the PNG as base64 or a data: URL")
+    limit: int | None = Field(None, ge=1, le=100_000)
+
+
+class AuditRequest(BaseModel):
+    model: str | None = None
+    source: DemoSource | FolderSource = Field(discriminator="kind")
+    method: str = "gradcam"
+    params: dict[str, Any] = Field(default_factory=dict)
+    target: Literal["label", "predicted"] = "label"
+    injection: InjectionRequest | None = None
+    background_swap: bool = False
+    gallery_layer: str | None = None
+    gallery_top: int = Field(8, ge=1, le=64)
+    policy: str | None = Field(None, description="name of a policy from GET /api/audits/options")
+
+
+# -- helpers ----------------------------------------------------------------------------------------
+
+
+def _policies() -> dict[str, Path]:
+    root = demo_models_dir()
+    return {p.stem: p for p in sorted(root.glob("*.toml"))} if root.is_dir() else {}
+
+
+def _policy_entry(name: str, path: Path) -> dict:
+    try:
+        p = load_policy(path)
+    except PellucidError as exc:
+        return {"name": name, "error": str(exc)}
+    return {"name": name, "title": p.name, "description": p.description, "method": p.method, "params": p.params,
+            "target": p.target, "thresholds": p.thresholds}
+
+
+def _policy(name: str | None) -> Policy | None:
+    if not name:
+        return None
+    known = _policies()
+    if name not in known:
+        raise NotFoundError(f"no policy named {name!r}; policies: {', '.join(known) or 'none'}")
+    return load_policy(known[name])
+
+
+def _demo_folder(settings: Settings, source: DemoSource) -> Path:
+    from ...demo.tiles import make_split, write_folder
+
+    folder = settings.data_dir / "demo-tiles" / f"{source.split}-{source.per_class}-{source.seed}"
+    if not (folder / "manifest.csv").is_file():
+        write_folder(make_split(source.split, per_class=source.per_class, seed=source.seed), folder)
+    return folder
+
+
+def _dataset_path(settings: Settings, source: DemoSource | FolderSource) -> Path:
+    if isinstance(source, DemoSource):
+        return _demo_folder(settings, source)
+    if settings.image_root is None:
+        raise BadParameterError("this server has no image folder; start it with --images DIR to audit a folder, "
+                                "or audit the demo tiles")
+    path = resolve_inside(settings.image_root, source.path)
+    if not path.is_dir():
+        raise BadParameterError(f"{source.path!r} is not a folder inside the image folder")
+    return path
+
+
+def _decode_png(text: str) -> np.ndarray:
+    raw = text.split(",", 1)[1] if text.startswith("data:") else text
+    try:
+        data = base64.b64decode(raw, validate=True)
+    except (binascii.Error, ValueError):
+        raise BadParameterError("patch_png must be base64 (or a data: URL) of a PNG picture") from None
+    return np.asarray(read_image(data, name="uploaded patch").pil.convert("RGB"), dtype=np.uint8).copy()
+
+
+def _injection(req: InjectionRequest | None, model: Any, dataset_root: Path, policy: Policy | None) -> InjectionSpec | None:
+    if req is None:
+        return None
+    at = tuple(req.at) if req.at else None
+    if req.kind == "demo_tag":
+        tag = demo_models_dir() / "policy-demo-tag.png"
+        if not tag.is_file():
+            raise NotFoundError("the demo tag picture is not installed (demo_models/policy-demo-tag.png)")
+        patch = np.asarray(read_image(tag).pil.convert("RGB"), dtype=np.uint8).copy()
+        return InjectionSpec(patch=patch, suspect_class=req.suspect_class, at=at or (78, 78),
+                             source="demo tag", limit=req.limit)
+    if req.kind == "crop":
+        if not req.image or not req.box:
+            raise BadParameterError("a cropped patch needs 'image' (path in the dataset) and 'box' [x0, y0, x1, y1]")
+        path = resolve_inside(dataset_root, req.image)
+        patch = crop_patch(model, path, tuple(req.box))
+        return InjectionSpec(patch=patch, suspect_class=req.suspect_class, at=at or (req.box[0], req.box[1]),
+                             source=f"cut from {req.image} box {list(req.box)}", limit=req.limit)
+    if not req.patch_png:
+        raise BadParameterError("an uploaded patch needs 'patch_png'")
+    if at is None:
+        raise BadParameterError("an uploaded patch needs 'at' [x, y]: where to paste it")
+    return InjectionSpec(patch=_decode_png(req.patch_png), suspect_class=req.suspect_class, at=at,
+                         source="uploaded", limit=req.limit)
+
+
+def _job_view(request: Request, ws: Workspace, job_id: str) -> dict:
+    job = ws.jobs.get(job_id)
+    live = _live(request).get(job_id)
+    if job is None or live is None:
+        raise NotFoundError(f"no audit job {job_id!r} on this server (it may have finished long ago)")
+    d = job.to_dict()
+    d.pop("meta", None)
+    return {**d, "phase": live.get("phase"), "run_id": live.get("run_id")}
+
+
+def _run_list_entry(run: Any) -> dict:
+    s = run.summary or {}
+    gate = s.get("gate")
+    return {**run.to_dict(with_summary=False), "accuracy": s.get("accuracy"),
+            "flagged_count": s.get("flagged_count"), "class_flags": len(s.get("class_flags", [])),
+            "gate": None if not gate else ("pass" if gate["passed"] else "fail"),
+            "resumable": run.status in RESUMABLE}
+
+
+def _launch(request: Request, ws: Workspace, store: Store, *, model_name: str, dataset_path: Path,
+            settings: AuditSettings, injection_req: InjectionRequest | None, background_swap: bool,
+            gallery: GallerySpec | None, policy: Policy | None, description: str,
+            prebuilt_injection: InjectionSpec | None = None) -> dict:
+    spec = ws.specs[model_name]
+    live: dict[str, Any] = {"phase": "queued", "run_id": None}
+
+    def work(progress, cancel):
+        live["phase"] = "loading the model"
+        # A private copy: the audit must not share hooks or thread settings with interactive requests.
+        model = load_model(spec, trust_pickled=ws.settings.trust_pickled)
+        live["phase"] = "reading files"
+        dataset = load_dataset(dataset_path, progress=progress, cancel=cancel)
+        injection = prebuilt_injection or _injection(injection_req, model, dataset.root, policy)
+        outcome = run_audit(
+            model, dataset, store=store, settings=settings, injection=injection, background_swap=background_swap,
+            gallery=gallery, progress=progress, cancel=cancel,
+            on_phase=lambda name: live.update(phase=name), on_run=lambda run: live.update(run_id=run.id),
+        )
+        if policy is not None:
+            summary = dict(outcome.summary)
+            summary["gate"] = evaluate_policy(policy, summary, labels=model.labels).to_dict()
+            store.set_summary(outcome.run.id, summary)
+        live["phase"] = "finished"
+        return {"run_id": outcome.run.id}
+
+    job = ws.jobs.submit("audit", work, description=description)
+    _live(request)[job.id] = live
+    return _job_view(request, ws, job.id)
+
+
+# -- endpoints ----------------------------------------------------------------------------------------
+
+
+@api.get("/options", summary="What an audit can be started with: models, methods, policies, layers")
+def options(ws: Workspace = Depends(get_workspace), settings: Settings = Depends(get_settings)) -> dict:
+    from ...core.attribution import method_names
+
+    models = []
+    for name, spec in ws.specs.items():
+        entry: dict[str, Any] = {"name": name, "labels": list(spec.output.labels)}
+        loaded = ws.loaded().get(name)
+        if loaded is not None and loaded.supports_hooks:
+            entry["conv_layers"] = conv_layer_names(loaded.module)
+        models.append(entry)
+    return {
+        "models": models,
+        "methods": method_names(),
+        "policies": [_policy_entry(name, path) for name, path in _policies().items()],
+        "demo_splits": list(DEMO_SPLITS),
+        "has_folder": settings.image_root is not None,
+        "caution": CAUTION,
+    }
+
+
+@api.get("/layers", summary="Layers a channel gallery can use for a model")
+def layers(model: str | None = None, ws: Workspace = Depends(get_workspace)) -> dict:
+    lm = ws.model(model)
+    if not lm.supports_hooks:
+        return {"model": lm.name, "layers": []}
+    return {"model": lm.name, "layers": ws.layer_map(lm).leaf_layer_names()}
+
+
+@api.post("", summary="Start an audit as a job (poll /api/audits/jobs/{id})")
+def start(body: AuditRequest, request: Request, ws: Workspace = Depends(get_workspace),
+          settings: Settings = Depends(get_settings), store: Store = Depends(get_store)) -> dict:
+    name = body.model or ws.default_model
+    if name not in ws.specs:
+        raise NotFoundError(f"no model named {name!r} on this server; models: {', '.join(ws.specs)}")
+    audit_settings = AuditSettings(method=body.method, params=body.params, target=body.target).validated()
+    policy = _policy(body.policy)
+    if body.injection is None and policy is not None and policy.injection is not None:
+        body.injection = InjectionRequest(kind="demo_tag", suspect_class=policy.injection.suspect_class,
+                                          at=list(policy.injection.at))
+    dataset_path = _dataset_path(settings, body.source)
+    gallery = GallerySpec(layer=body.gallery_layer, top=body.gallery_top) if body.gallery_layer else None
+    return _launch(request, ws, store, model_name=name, dataset_path=dataset_path, settings=audit_settings,
+                   injection_req=body.injection, background_swap=body.background_swap, gallery=gallery,
+                   policy=policy, description=f"audit of {dataset_path.name} with {name} ({body.method})")
+
+
+@api.get("/jobs/{job_id}", summary="Progress of an audit job: phase, counts, time left, run id")
+def job_status(job_id: str, request: Request, ws: Workspace = Depends(get_workspace),
+               store: Store = Depends(get_store)) -> dict:
+    return _job_view(request, ws, job_id)
+
+
+@api.post("/jobs/{job_id}/cancel", summary="Cancel an audit job (its run is kept and can be resumed)")
+def cancel(job_id: str, request: Request, ws: Workspace = Depends(get_workspace),
+           store: Store = Depends(get_store)) -> dict:
+    _job_view(request, ws, job_id)
+    ws.jobs.cancel(job_id)
+    return _job_view(request, ws, job_id)
+
+
+@api.get("/runs", summary="Stored audit runs, newest first")
+def runs(store: Store = Depends(get_store)) -> dict:
+    return {"runs": [_run_list_entry(r) for r in store.list_runs()]}
+
+
+@api.get("/runs/{run_id}", summary="One stored run with its settings and summary")
+def run_detail(run_id: str, store: Store = Depends(get_store)) -> dict:
+    run = store.get_run(run_id)
+    out = run.to_dict()
+    out["artefacts"] = sorted(store.run_artefacts(run.id))
+    out["caution"] = CAUTION
+    out["resumable"] = run.status in RESUMABLE
+    return out
+
+
+@api.delete("/runs/{run_id}", summary="Delete a run, its results and artefacts no other run uses")
+def delete(run_id: str, store: Store = Depends(get_store)) -> dict:
+    run = store.get_run(run_id)
+    removed = store.delete_run(run.id)
+    return {"deleted": run.id, "files_removed": removed}
+
+
+@api.post("/runs/{run_id}/resume", summary="Resume an interrupted, cancelled or failed run as a job")
+def resume(run_id: str, request: Request, ws: Workspace = Depends(get_workspace),
+           store: Store = Depends(get_store)) -> dict:
+    run = store.get_run(run_id)
+    if run.status not in RESUMABLE:
+        raise BadParameterError(f"run {run.id} is {run.status}; only interrupted, cancelled or failed runs resume")
+    name = next((n for n, s in ws.specs.items() if s.path and str(s.path) == run.model_spec), None)
+    if name is None:
+        raise NotFoundError(f"run {run.id} used the model spec {run.model_spec!r}, which this server does not offer; "
+                            "resume it from the command line instead")
+    root = Path(run.dataset_root)
+    dataset = load_dataset(root)
+    if dataset.hash != run.dataset_hash:
+        raise DataError(f"the folder {str(root)!r} changed since run {run.id} started (its hash differs); "
+                        "start a new audit")
+    settings, injection, gallery, swap = stored_inputs(store, run)
+    return _launch(request, ws, store, model_name=name, dataset_path=root, settings=settings, injection_req=None,
+                   background_swap=swap, gallery=gallery, policy=None, description=f"resume of run {run.id}",
+                   prebuilt_injection=injection)
+
+
+def _finished(store: Store, run_id: str) -> Any:
+    run = store.get_run(run_id)
+    if not run.summary:
+        raise BadParameterError(f"run {run.id} is {run.status} and has no summary yet")
+    return run
+
+
+@api.get("/runs/{run_id}/flagged", summary="Flagged images, most suspect first, with picture and overlay")
+def flagged(run_id: str, limit: int = Query(24, ge=1, le=100), store: Store = Depends(get_store)) -> dict:
+    run = _finished(store, run_id)
+    arts = store.run_artefacts(run.id)
+    out = []
+    for entry in run.summary["flagged_images"][:limit]:
+        pics = {}
+        for kind in ("image", "overlay"):
+            digest = arts.get(f"flagged/{entry['rel']}/{kind}")
+            pics[kind] = data_url(store.get_bytes(digest)) if digest else None
+        out.append({**entry, **pics})
+    return {"run_id": run.id, "flagged_count": run.summary["flagged_count"], "images": out, "caution": CAUTION}
+
+
+@api.get("/runs/{run_id}/image", summary="One image of a run: its result, picture and overlay")
+def image(run_id: str, rel: str = Query(..., description="path relative to the dataset root"),
+          store: Store = Depends(get_store)) -> dict:
+    run = _finished(store, run_id)
+    row = store.result(run.id, rel)
+    out: dict[str, Any] = {"rel": row.rel, "label": row.label, "status": row.status, "result": row.data}
+    if row.status == "done" and row.map_hash and run.model_spec:
+        spec = ModelSpec.from_toml(run.model_spec)
+        path = resolve_inside(Path(run.dataset_root), rel)
+        display = prepare(spec, read_image(path)).display
+        amap = store.get_array(row.map_hash)
+        signed = bool(row.data.get("signed"))
+        lo, hi = render.value_range(amap, signed=signed)
+        cmap = render.SIGNED_CMAP if signed else render.MAGNITUDE_CMAP
+        out["image"] = data_url(render.encode_png(display))
+        out["overlay"] = data_url(render.encode_png(render.overlay(display, amap, cmap=cmap, vmin=lo, vmax=hi)))
+        out["scale"] = {"vmin": lo, "vmax": hi, "cmap": cmap,
+                        "colorbar": data_url(render.colorbar_png(vmin=lo, vmax=hi, cmap=cmap, label="evidence"))}
+    return out
+
+
+@api.get("/runs/{run_id}/mean-maps", summary="Per-class mean evidence maps on one shared colour scale")
+def mean_maps(run_id: str, store: Store = Depends(get_store)) -> dict:
+    run = _finished(store, run_id)
+    maps = {c: store.get_array(h) for c, h in run.summary.get("mean_maps", {}).items()}
+    vmax = max((float(m.max()) for m in maps.values()), default=1.0) or 1.0
+    cmap = render.MAGNITUDE_CMAP
+    return {
+        "scale": {"vmin": 0.0, "vmax": vmax, "cmap": cmap, "meaning": "1 = as much evidence as a uniform map",
+                  "colorbar": data_url(render.colorbar_png(vmin=0.0, vmax=vmax, cmap=cmap, label="mean evidence"))},
+        "maps": [{"class": c, "png": data_url(render.map_png(m, signed=False, vmin=0.0, vmax=vmax, upscale=2))}
+                 for c, m in maps.items()],
+    }
+
+
+@api.get("/runs/{run_id}/artefact", summary="A stored PNG of a run (injection examples, feature visuals)")
+def artefact(run_id: str, name: str = Query(...), store: Store = Depends(get_store)) -> Response:
+    run = store.get_run(run_id)
+    digest = store.run_artefacts(run.id).get(name)
+    if digest is None or not name.startswith(("injection/", "swap/", "gallery/visual/", "flagged/")):
+        raise NotFoundError(f"run {run.id} has no picture called {name!r}")
+    return Response(store.get_bytes(digest), media_type="image/png")
+
+
+@api.get("/runs/{run_id}/gallery", summary="The channel response gallery of a run, as pictures")
+def gallery(run_id: str, channels: int = Query(8, ge=1, le=256), store: Store = Depends(get_store)) -> dict:
+    run = _finished(store, run_id)
+    g = run.summary.get("gallery")
+    if not g:
+        raise NotFoundError(f"run {run.id} has no channel gallery; start an audit with a gallery layer")
+    arts = store.run_artefacts(run.id)
+    patches = store.get_array(arts["gallery/patches"])
+    out = []
+    for c in g["most_selective"][:channels]:
+        visual = arts.get(f"gallery/visual/{c}")
+        out.append({
+            "channel": c, "selectivity": g["selectivity"][c], "preferred_class": g["preferred_class"][c],
+            "class_means": dict(zip(g["classes"], g["class_means"][c])),
+            "patches": [{"png": data_url(render.encode_png(render.upscale_nearest(patches[c, n], 2))), **e}
+                        for n, e in enumerate(g["entries"][c])],
+            "visual": data_url(store.get_bytes(visual)) if visual else None,
+        })
+    return {"layer": g["layer"], "rf_size": g["rf_size"], "kernel_layer": g["kernel_layer"], "channels": out,
+            "caution": "A synthetic picture shows what excites a channel, not what it responds to in these images."}
+
+
+@api.get("/compare", summary="Differences between two stored runs")
+def compare(first: str, second: str, store: Store = Depends(get_store)) -> dict:
+    return compare_runs(store, first, second)
+
+
+def _report_file(store: Store, run_id: str, kind: str) -> Response:
+    from ...core.report import write_report
+
+    run = store.get_run(run_id)
+    with tempfile.TemporaryDirectory(prefix="pellucid-report-") as tmp:
+        files = write_report(store, run.id, tmp, pdf=(kind == "pdf"))
+        data = files[-1].read_bytes()
+    media = "text/html; charset=utf-8" if kind == "html" else "application/pdf"
+    stamp = time.strftime("%Y%m%d", time.gmtime())
+    return Response(data, media_type=media,
+                    headers={"Content-Disposition": f'attachment; filename="pellucid-audit-{run.id}-{stamp}.{kind}"'})
+
+
+@api.get("/runs/{run_id}/report.html", summary="Download the run's self-contained HTML report")
+def report_html(run_id: str, store: Store = Depends(get_store)) -> Response:
+    return _report_file(store, run_id, "html")
+
+
+@api.get("/runs/{run_id}/report.pdf", summary="Download the run's PDF report")
+def report_pdf(run_id: str, store: Store = Depends(get_store)) -> Response:
+    return _report_file(store, run_id, "pdf")
+
+
+@pages.get("/audits", response_class=HTMLResponse)
+def audits_page(request: Request, ws: Workspace = Depends(get_workspace),
+                settings: Settings = Depends(get_settings)) -> HTMLResponse:
+    context = {
+        "page": "audits", "version": __version__, "caution": CAUTION, "models": list(ws.specs),
+        "selected_model": request.query_params.get("model") or next(iter(ws.specs), None),
+        "has_folder": settings.image_root is not None, "policies": list(_policies()),
+        "demo_splits": DEMO_SPLITS,
+    }
+    return request.app.state.templates.TemplateResponse(request, "audits.html", context)
+
+
+# One router for the app to mount: the JSON API and the page.
+router = APIRouter()
+router.include_router(api)
+router.include_router(pages)

@@ -224,7 +224,7 @@ def bench_input(name: str, size: int, seed: int) -> tuple[torch.Tensor, str]:
 
 
 def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stride: int, *, args: argparse.Namespace,
-             batch: int, ceiling: float) -> dict[str, Any]:
+             batch: int) -> dict[str, Any]:
     x, input_desc = bench_input(name, size, size * 31 + stride)
     base, _ = make_baseline(x, "mean", patch=patch)
     tops = occlusion_positions(size, patch, stride)
@@ -246,28 +246,19 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
     case["conv_macs"] = engine.conv_macs
     inc_batch = engine.default_batch(nr, nc)
 
-    # rows measured: all, or first + last + evenly spaced interior rows
-    if full_grid:
-        rows = list(range(nr))
-    else:
-        interior = np.linspace(1, nr - 2, num=min(args.interior_rows, max(0, nr - 2))).round().astype(int).tolist()
-        rows = sorted({0, nr - 1, *interior})
-
     def grid_positions(rr: list[int]) -> tuple[torch.Tensor, torch.Tensor]:
         tt = torch.as_tensor(tops[rr]).repeat_interleave(nc)
         ll = torch.as_tensor(lefts).repeat(len(rr))
         return tt, ll
 
-    def extrapolate(per_row: dict[int, float]) -> float:
-        if full_grid:
-            return sum(per_row.values())
-        inner = [v for r, v in per_row.items() if r not in (0, nr - 1)]
-        return per_row[0] + per_row[nr - 1] + (statistics.mean(inner) if inner else 0.0) * (nr - 2)
+    # the ceiling, measured again next to this case (the machine is shared and its speed drifts)
+    case["ceiling"] = mm_ceiling(2048, 3)
+    ceiling = float(case["ceiling"]["gflops"])
 
     # batched: a few full batches (same cost at every position), or the whole grid
     _, batched_eval, _, _ = _choose_engine(model, x, base, patch, "batched", batch, (nr, nc))
     if full_grid:
-        bt, bl = grid_positions(rows)
+        bt, bl = grid_positions(list(range(nr)))
     else:
         k = min(n, batch * args.batched_batches)
         sel = np.linspace(0, n - 1, num=k).round().astype(int)
@@ -296,59 +287,71 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
                                 "rss_growth": peak[1], "extrapolated": k < n, "max_abs_diff": diff_n}
     print(f"naive        {sec_n:9.2f} s  ({k} positions measured)", flush=True)
 
-    # incremental: per measured row
-    def incremental_rows() -> tuple[dict[int, float], torch.Tensor]:
-        per_row: dict[int, float] = {}
-        outs = []
-        eng = IncrementalOcclusion(model, x, base, patch=patch, self_check=False)
-        with torch.inference_mode():
-            for r in rows:
-                tt, ll = grid_positions([r])
-                t0 = time.perf_counter()
-                for i in range(0, len(tt), inc_batch):
-                    outs.append(eng.logits(tt[i : i + inc_batch], ll[i : i + inc_batch]))
-                per_row[r] = time.perf_counter() - t0
-        return per_row, torch.cat(outs)
+    whole = full_grid or n <= args.approx_max_positions
+    ri = {int(t): i for i, t in enumerate(tops)}
+    ci = {int(v): j for j, v in enumerate(lefts)}
+    if whole:
+        # incremental on the whole grid through the public entry point (setup included); it is also
+        # the exact reference of the approximate mode
+        med, times, exact, peak = timed(
+            lambda: occlusion_map(model, x, target=target, patch=patch, stride=stride, method="incremental"),
+            args.reps if full_grid else 1)
+        got = np.array([exact.grid[ri[int(t)], ci[int(v)]] for t, v in zip(bt, bl)], dtype=np.float64)
+        diff_i = float(np.abs(got - (exact.base_score - scores_b.numpy())).max())
+        case["methods"]["incremental"] = {"seconds": med, "times": times, "peak_rss": peak[0], "rss_growth": peak[1],
+                                          "batch": exact.batch_size, "extrapolated": False, "whole_grid": True,
+                                          "max_abs_diff": diff_i, "compared_positions": len(bt),
+                                          "engine": exact.engine}
+        print(f"incremental  {med:9.2f} s  (whole grid, {len(times)} run(s)), max|diff| {diff_i:.1e} "
+              f"at {len(bt)} positions", flush=True)
+    else:
+        # first row, last row and evenly spaced interior rows; border rows are cheaper
+        interior = np.linspace(0, nr - 1, num=args.interior_rows + 2)[1:-1].round().astype(int).tolist()
+        rows = sorted({0, nr - 1, *interior})
 
-    t0 = time.perf_counter()
-    IncrementalOcclusion(model, x, base, patch=patch)  # setup cost: trace, clean run, self-check
-    setup = time.perf_counter() - t0
-    inc_times = []
-    peak = growth = 0
-    logits_i = None
-    for _ in range(args.reps):
-        with PeakRSS() as rss:
-            per_row, logits_i = incremental_rows()
-        peak, growth = max(peak, rss.peak), max(growth, rss.growth)
-        inc_times.append(extrapolate(per_row) + setup)
-    sec_i = statistics.median(inc_times)
-    # compare with batched on the first and one interior measured row (border and interior windows)
-    it, _ = grid_positions(rows)
-    check_rows = rows[:2]
-    ct, cl = grid_positions(check_rows)
-    ref_rows = evaluate_positions(batched_eval, ct, cl, batch)
-    diff_i = float((_scores(logits_i[: len(ct)], target, "softmax") - _scores(ref_rows, target, "softmax")).abs().max())
-    case["methods"]["incremental"] = {"seconds": sec_i, "setup_seconds": setup, "measured_positions": len(it),
-                                      "measured_rows": rows, "times": inc_times, "peak_rss": peak,
-                                      "rss_growth": growth, "batch": inc_batch, "extrapolated": len(it) < n,
-                                      "max_abs_diff": diff_i, "checked_rows": check_rows}
-    print(f"incremental  {sec_i:9.2f} s  ({len(rows)} rows measured, setup {setup:.2f} s), "
-          f"max|diff| {diff_i:.1e}", flush=True)
+        def incremental_rows() -> tuple[dict[int, float], torch.Tensor]:
+            per_row: dict[int, float] = {}
+            outs = []
+            eng = IncrementalOcclusion(model, x, base, patch=patch, self_check=False)
+            with torch.inference_mode():
+                for r in rows:
+                    tt, ll = grid_positions([r])
+                    t0 = time.perf_counter()
+                    for i in range(0, len(tt), inc_batch):
+                        outs.append(eng.logits(tt[i : i + inc_batch], ll[i : i + inc_batch]))
+                    per_row[r] = time.perf_counter() - t0
+            return per_row, torch.cat(outs)
+
+        t0 = time.perf_counter()
+        IncrementalOcclusion(model, x, base, patch=patch)  # setup cost: trace, clean run, self-check
+        setup = time.perf_counter() - t0
+        inc_times = []
+        peak_i = growth = 0
+        logits_i = None
+        for _ in range(args.reps):
+            with PeakRSS() as rss:
+                per_row, logits_i = incremental_rows()
+            peak_i, growth = max(peak_i, rss.peak), max(growth, rss.growth)
+            inner = [v for r, v in per_row.items() if r not in (0, nr - 1)]
+            inc_times.append(per_row[0] + per_row[nr - 1] + statistics.mean(inner) * (nr - 2) + setup)
+        sec_i = statistics.median(inc_times)
+        # compare with batched on the first row and the first interior row (border and interior windows)
+        ct, cl = grid_positions(rows[:2])
+        ref_rows = evaluate_positions(batched_eval, ct, cl, batch)
+        diff_i = float((_scores(logits_i[: len(ct)], target, "softmax")
+                        - _scores(ref_rows, target, "softmax")).abs().max())
+        case["methods"]["incremental"] = {"seconds": sec_i, "setup_seconds": setup, "measured_rows": rows,
+                                          "measured_positions": len(rows) * nc, "times": inc_times,
+                                          "peak_rss": peak_i, "rss_growth": growth, "batch": inc_batch,
+                                          "extrapolated": True, "whole_grid": False, "max_abs_diff": diff_i,
+                                          "compared_positions": len(ct)}
+        print(f"incremental  {sec_i:9.2f} s  (rows {rows}, setup {setup:.2f} s), max|diff| {diff_i:.1e}", flush=True)
 
     # approximate: needs the whole grid, and the exact map for its error
-    if n <= args.approx_max_positions:
-        with PeakRSS() as rss:
-            t0 = time.perf_counter()
-            exact = occlusion_map(model, x, target=target, patch=patch, stride=stride, method="incremental")
-            exact_sec = time.perf_counter() - t0
-        # the whole incremental grid against batched at the positions batched measured
-        ri = {int(t): i for i, t in enumerate(tops)}
-        ci = {int(v): j for j, v in enumerate(lefts)}
-        whole = np.array([exact.grid[ri[int(t)], ci[int(v)]] for t, v in zip(bt, bl)], dtype=np.float64)
-        diff_whole = float(np.abs(whole - (exact.base_score - scores_b.numpy())).max())
+    if whole:
         med, times, approx, peak = timed(
             lambda: occlusion_map(model, x, target=target, patch=patch, stride=stride, method="approximate",
-                                  refine_tolerance=args.refine_tolerance), max(1, args.reps if full_grid else 1))
+                                  refine_tolerance=args.refine_tolerance), args.reps if full_grid else 1)
         err = compare_to_exact(approx, model, x, exact=exact)
         case["methods"]["approximate"] = {"seconds": med, "times": times, "peak_rss": peak[0], "rss_growth": peak[1],
                                           "extrapolated": False,
@@ -356,11 +359,8 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
                                           "evaluated_fraction": err["evaluated_fraction"],
                                           "refine_tolerance": args.refine_tolerance,
                                           "exact_engine": approx.details.get("exact_engine")}
-        case["incremental_whole_grid"] = {"seconds": exact_sec, "peak_rss": rss.peak, "rss_growth": rss.growth,
-                                          "engine": exact.engine, "max_abs_diff_vs_batched": diff_whole,
-                                          "compared_positions": len(bt)}
         print(f"approximate  {med:9.2f} s  ({err['evaluated_fraction']:.0%} evaluated, max|err| "
-              f"{err['grid_max_abs']:.1e}); whole-grid incremental {exact_sec:.2f} s", flush=True)
+              f"{err['grid_max_abs']:.1e})", flush=True)
 
     for m in case["methods"].values():
         m["vs_naive"] = sec_n / m["seconds"]
@@ -406,9 +406,13 @@ def markdown(report: dict[str, Any]) -> str:
             elif r["extrapolated"]:
                 how = f"{r['measured_positions']} of {c['n_positions']} positions, extrapolated"
                 if meth == "incremental":
-                    how = f"rows {r['measured_rows']} of {c['rows']}, extrapolated; incl. {r['setup_seconds']:.2f} s setup"
+                    how = (f"rows {r['measured_rows']} of {c['rows']}, extrapolated; incl. {r['setup_seconds']:.2f} s "
+                           "setup; diff on 2 rows")
             else:
-                how = "whole grid" + (f"; incl. {r['setup_seconds']:.2f} s setup" if meth == "incremental" else "")
+                how = f"whole grid, {len(r['times'])} run(s)"
+                if meth == "incremental":
+                    how += f"; diff at the {r['compared_positions']} positions batched ran"
+            how += f"; ceiling {c['ceiling']['gflops']:.1f}"
             ideal = f"{c['ideal_speedup']:.2f}" if meth == "incremental" else ""
             diff = "reference" if meth == "batched" else f"{r['max_abs_diff']:.1e}"
             lines.append(
@@ -422,13 +426,6 @@ def markdown(report: dict[str, Any]) -> str:
             seen.add((c["model"], c["size"]))
             lines.append(f"- {c['model']} {c['size']}²: {c['description']}; input {c['input']}; "
                          f"{c['macs'] / 1e9:.3f} GMAC per forward (torch FLOP counter / 2).")
-    lines += ["", "Whole-grid incremental runs (the exact reference of the approximate rows):", ""]
-    for c in report["cases"]:
-        w = c.get("incremental_whole_grid")
-        if w:
-            lines.append(f"- {c['model']} {c['size']}² stride {c['stride']}: {w['seconds']:.2f} s for all "
-                         f"{c['n_positions']} positions (engine {w['engine']}); max abs diff to batched at the "
-                         f"{w['compared_positions']} positions batched measured: {w['max_abs_diff_vs_batched']:.1e}.")
     return "\n".join(lines) + "\n"
 
 
@@ -442,13 +439,15 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--reps", type=int, default=3, help="repetitions per timing (median reported)")
     p.add_argument("--threads", nargs="+", type=int, default=None,
                    help="intra-op thread counts to try in the tuning sweep (default: 1 and all cores)")
+    p.add_argument("--batch", type=int, default=None, help="batched batch size (default: the sweep's best)")
     p.add_argument("--naive-positions", type=int, default=8)
-    p.add_argument("--batched-batches", type=int, default=2, help="batches timed when not running the whole grid")
+    p.add_argument("--batched-batches", type=int, default=4, help="batches timed when not running the whole grid")
     p.add_argument("--interior-rows", type=int, default=2, help="interior rows timed for incremental")
     p.add_argument("--full", action="store_true", help="time every method on the whole grid (slow)")
     p.add_argument("--full-below-gmac", type=float, default=400.0,
                    help="run the whole grid when positions × MACs is below this many GMAC")
-    p.add_argument("--approx-max-positions", type=int, default=1000)
+    p.add_argument("--approx-max-positions", type=int, default=1000,
+                   help="grids up to this size also run incremental (once) and approximate on the whole grid")
     p.add_argument("--refine-tolerance", type=float, default=0.05)
     p.add_argument("--no-demo-native", dest="demo_native", action="store_false",
                    help="skip the demo model at its own 96×96 input size")
@@ -472,8 +471,8 @@ def main(argv: list[str] | None = None) -> int:
         sizes = [args.size] + ([96] if name == "tilenet" and args.size != 96 and args.demo_native else [])
         for size in sizes:
             for stride in args.strides:
-                cases.append(run_case(model, desc, name, size, args.patch, stride, args=args, batch=best["batch"],
-                                      ceiling=ceiling["gflops"]))
+                cases.append(run_case(model, desc, name, size, args.patch, stride, args=args,
+                                      batch=args.batch or best["batch"]))
         del model
     report = {
         "command": "python -m bench.occlusion_bench " + " ".join(argv if argv is not None else sys.argv[1:]),

@@ -35,10 +35,9 @@ RESULTS = REPO / "bench" / "results" / "load.md"
 KINDS = ("predict", "activations", "kernels", "occlusion")
 WEIGHTS = (0.4, 0.25, 0.15, 0.2)
 OCCLUSION_PARAMS = ({"patch": 24, "stride": 24}, {"patch": 32, "stride": 16}, {"patch": 16, "stride": 16})
-# The "auto" engine may pick the incremental one, whose torch.fx trace patches nn.Module.__call__
-# for the whole process while it runs: a forward pass on another thread at that moment fails with
-# TraceError (a 500). Reported to the lead; until it is fixed the load runs the batched engine.
-DEFAULT_ENGINE = "batched"
+# The engine the dashboard uses by default: "auto" picks the incremental engine where it pays,
+# whose torch.fx trace must not disturb forward passes of concurrent requests (core/_fx_trace.py).
+DEFAULT_ENGINE = "auto"
 
 
 def free_port() -> int:
@@ -279,7 +278,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--time-limit", type=float, default=300.0)
     parser.add_argument("--out", type=Path, default=RESULTS)
     parser.add_argument("--workdir", type=Path, default=None)
-    parser.add_argument("--engine", default=DEFAULT_ENGINE, help="occlusion engine of the jobs (default batched)")
+    parser.add_argument("--engine", default=DEFAULT_ENGINE, help="occlusion engine of the jobs (default auto)")
     args = parser.parse_args(argv)
     import tempfile
 

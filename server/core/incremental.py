@@ -44,6 +44,8 @@ import torch
 import torch.nn.functional as F
 from torch import fx, nn
 
+from ._fx_trace import trace_isolated
+
 __all__ = ["FULL_FRACTION", "WORTHWHILE_SPEEDUP", "IncrementalOcclusion", "NotIncremental"]
 
 # A window covering at least this share of its map is computed as a full map instead: cropping
@@ -190,7 +192,7 @@ class IncrementalOcclusion:
         self.patch = int(patch)
         self.full_fraction = float(full_fraction)
         try:
-            gm = fx.symbolic_trace(model)
+            gm = trace_isolated(model)
         except Exception as exc:  # noqa: BLE001 — tracing runs user code; any failure means "not traceable"
             raise NotIncremental(f"the model cannot be traced with torch.fx ({type(exc).__name__}: {exc}).") from None
         self.gm = gm

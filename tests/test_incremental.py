@@ -109,6 +109,23 @@ class TestEqualsBruteForce:
         x = torch.randn(1, 3, *hw, generator=torch.Generator().manual_seed(7))
         _assert_same(mobilenet, x, patch=patch, stride=stride, baseline="mean")
 
+    def test_exact_in_double_precision(self, resnet):
+        # In float64 the only difference between crop and full-map convolution is rounding, so the
+        # maps agree to ~1e-12: the windows really cover every changed value (nothing is missed).
+        torch.manual_seed(18)
+        vgg = _random_bn(_small_vgg(), seed=19).double()
+        x = torch.randn(1, 3, 36, 36, generator=torch.Generator().manual_seed(20), dtype=torch.float64)
+        ref = occlusion_map(vgg, x, patch=7, stride=3, method="batched", output="logit")
+        inc = occlusion_map(vgg, x, patch=7, stride=3, method="incremental", output="logit")
+        assert float(np.abs(inc.grid - ref.grid).max()) <= 1e-9
+        import copy
+
+        res64 = copy.deepcopy(resnet).double()
+        x = torch.randn(1, 3, 40, 40, generator=torch.Generator().manual_seed(21), dtype=torch.float64)
+        ref = occlusion_map(res64, x, patch=9, stride=7, method="batched", output="logit")
+        inc = occlusion_map(res64, x, patch=9, stride=7, method="incremental", output="logit")
+        assert float(np.abs(inc.grid - ref.grid).max()) <= 1e-9
+
     def test_tilenet_architecture(self):
         from server.demo.net import build_tilenet
 

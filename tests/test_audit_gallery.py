@@ -109,8 +109,8 @@ class TestFeatureVisual:
     # Source: Olah, Mordvintsev & Schubert, "Feature Visualization", Distill 2017: gradient ascent on a
     # unit's activation with transformation robustness and a Fourier / decorrelated parameterisation.
     def _run(self, model, **kw):
-        base = {"layer": "features.block2.relu", "channel": 3, "size": (48, 48), "mean": model.spec.preprocess.mean,
-                    "std": model.spec.preprocess.std, "steps": 24}
+        base = {"layer": "features.block2.relu", "channel": 3, "size": (32, 32), "mean": model.spec.preprocess.mean,
+                    "std": model.spec.preprocess.std, "steps": 16}
         base.update(kw)
         return feature_visual(model.module, **base)
 
@@ -119,7 +119,7 @@ class TestFeatureVisual:
         for param in ("fourier", "pixel"):
             v = self._run(model, parameterisation=param)
             assert v.final_activation > v.start_activation
-            assert v.image.shape == (48, 48, 3) and v.image.dtype == np.uint8
+            assert v.image.shape == (32, 32, 3) and v.image.dtype == np.uint8
 
     def test_seeded(self, tiny) -> None:
         model, _ = tiny

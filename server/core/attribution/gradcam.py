@@ -9,6 +9,8 @@ a block of them); the default is the last ``nn.Conv2d`` to run.
 
 from __future__ import annotations
 
+import threading
+
 from typing import Any
 
 import numpy as np
@@ -34,9 +36,12 @@ def conv_like_layers(model: nn.Module, x: torch.Tensor) -> list[str]:
     """Names of the modules whose output for ``x`` (1, C, H, W) is 4-D, in execution order."""
     seen: list[str] = []
     handles = []
+    owner = threading.get_ident()  # a shared model may run other requests' forwards meanwhile
 
     def make(name: str):
         def hook(module: nn.Module, inputs: Any, output: Any) -> None:
+            if threading.get_ident() != owner:
+                return
             if isinstance(output, torch.Tensor) and output.ndim == 4 and name not in seen:
                 seen.append(name)
         return hook
@@ -76,9 +81,12 @@ def _gradcam(
         chosen = {wanted: modules[wanted]}
 
     captured: dict[str, Any] = {}
+    owner = threading.get_ident()  # only this call's forward pass is captured, not other threads'
 
     def make(name: str):
         def hook(module: nn.Module, inputs: Any, output: Any) -> Any:
+            if threading.get_ident() != owner:
+                return None
             captured["name"], captured["out"] = name, output
             # Hand a copy downstream so an in-place op after this layer cannot change A.
             return output.clone() if isinstance(output, torch.Tensor) else output

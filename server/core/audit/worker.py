@@ -11,6 +11,7 @@ shard runs, because a different number of threads may sum floating-point values 
 from __future__ import annotations
 
 import hashlib
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -153,10 +154,14 @@ def process_shard(task: ShardTask, *, model: LoadedModel | None = None,
                   cancel: CancelToken | None = None) -> list[ImageOutcome]:
     """Audit every image of ``task``; ``model`` skips loading when the caller already holds it."""
     settings = AuditSettings.from_dict(task.settings)
+    # Thread count is process-wide: set it only on a process's main thread (a pool or Ray worker,
+    # or the CLI), never from a job thread of the dashboard, whose other requests share the process.
+    own_process = threading.current_thread() is threading.main_thread()
     if model is None:
         model = worker_model(task.spec_path, task.fingerprint, trust_pickled=task.trust_pickled)
     threads = torch.get_num_threads()
-    torch.set_num_threads(settings.threads)
+    if own_process:
+        torch.set_num_threads(settings.threads)
     try:
         out: list[ImageOutcome] = []
         for item in task.items:
@@ -165,5 +170,6 @@ def process_shard(task: ShardTask, *, model: LoadedModel | None = None,
             out.append(audit_image(model, item, settings))
         return out
     finally:
-        torch.set_num_threads(threads)
+        if own_process:
+            torch.set_num_threads(threads)
 

@@ -10,7 +10,7 @@ import argparse
 import importlib
 import os
 import sys
-from typing import Callable, Sequence
+from collections.abc import Callable, Sequence
 
 from . import __version__
 from .core.errors import PellucidError

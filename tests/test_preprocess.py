@@ -51,7 +51,7 @@ def test_exif_orientation_is_honoured():
 @pytest.mark.parametrize(
     "make, note",
     [
-        (lambda: Image.fromarray((np.arange(64, dtype=np.uint16).reshape(8, 8) * 1000)), "I;16"),
+        (lambda: Image.fromarray(np.arange(64, dtype=np.uint16).reshape(8, 8) * 1000), "I;16"),
         (lambda: Image.new("RGBA", (8, 8), (10, 20, 30, 0)), "composited onto white"),
         (lambda: Image.new("CMYK", (8, 8), (0, 0, 0, 0)), "CMYK"),
         (lambda: Image.new("P", (8, 8)), "palette image"),

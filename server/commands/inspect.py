@@ -91,7 +91,7 @@ def _inspect(args: argparse.Namespace) -> int:
     from ..core.attribution import Normalization, compute_attribution, get_method
     from ..core.bundled import resolve_model_ref
     from ..core.errors import BadParameterError, UnsupportedLayerError
-    from ..core.kernels import kernel_view, rgb_grid, channel_grid
+    from ..core.kernels import channel_grid, kernel_view, rgb_grid
     from ..core.layers import layer_map
     from ..core.models import load_model
     from ..core.occlusion import occlusion_map

@@ -13,7 +13,8 @@ from __future__ import annotations
 import builtins
 import functools
 import threading
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 from torch import fx, nn
 

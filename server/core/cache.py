@@ -9,7 +9,8 @@ from __future__ import annotations
 import json
 import threading
 from collections import OrderedDict
-from typing import Any, Hashable
+from collections.abc import Hashable
+from typing import Any
 
 
 def result_key(*, model: str, image: str, method: str, params: dict[str, Any]) -> tuple[str, str, str, str]:

@@ -7,7 +7,7 @@ CLI, the dashboard and the reports share one picture of each result.
 from __future__ import annotations
 
 import io
-from typing import Mapping
+from collections.abc import Mapping
 
 import matplotlib
 

@@ -17,9 +17,10 @@ import time
 import traceback
 import uuid
 from collections import OrderedDict
+from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from typing import Any
 
 from .errors import Cancelled, PellucidError
 from .progress import CancelToken

@@ -10,7 +10,8 @@ from __future__ import annotations
 
 import difflib
 import threading
-from typing import Any, Iterable
+from collections.abc import Iterable
+from typing import Any
 
 import torch
 from torch import nn
@@ -85,7 +86,7 @@ class Probe:
 
         return hook
 
-    def __enter__(self) -> "Probe":
+    def __enter__(self) -> Probe:
         self._thread = threading.get_ident()
         try:
             for name, module in self._modules.items():

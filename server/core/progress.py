@@ -8,7 +8,7 @@ Every long core function takes ``progress=`` (called as ``progress(done, total)`
 from __future__ import annotations
 
 import threading
-from typing import Callable, Optional
+from collections.abc import Callable
 
 from .errors import Cancelled
 
@@ -36,7 +36,7 @@ class CancelToken:
         return f"CancelToken(cancelled={self.cancelled})"
 
 
-def step(done: int, total: int, *, progress: Optional[ProgressFn], cancel: Optional[CancelToken]) -> None:
+def step(done: int, total: int, *, progress: ProgressFn | None, cancel: CancelToken | None) -> None:
     """Report ``done`` of ``total`` units and stop if cancellation was requested."""
     if cancel is not None:
         cancel.raise_if_cancelled()

@@ -67,7 +67,7 @@ class ModelSpec:
     path: Path | None = None
 
     @classmethod
-    def from_toml(cls, path: str | Path) -> "ModelSpec":
+    def from_toml(cls, path: str | Path) -> ModelSpec:
         path = Path(path)
         if not path.is_file():
             raise SpecError(f"model spec {str(path)!r} does not exist or is not a file")
@@ -78,7 +78,7 @@ class ModelSpec:
         return cls.from_dict(data, base_dir=path.resolve().parent, path=path.resolve())
 
     @classmethod
-    def from_dict(cls, data: dict[str, Any], *, base_dir: Path, path: Path | None = None) -> "ModelSpec":
+    def from_dict(cls, data: dict[str, Any], *, base_dir: Path, path: Path | None = None) -> ModelSpec:
         where = str(path) if path else "model spec"
         _only_keys(data, {"name", "description", "card", "source", "input", "preprocess", "output"}, where)
         name = _typed(data, "name", str, where, required=True)

@@ -12,9 +12,9 @@ import hmac
 import ipaddress
 import secrets
 import threading
+from collections.abc import Awaitable, Callable
 from dataclasses import dataclass, field
 from http.cookies import SimpleCookie
-from typing import Awaitable, Callable
 from urllib.parse import parse_qs, urlencode
 
 COOKIE = "pellucid_token"
@@ -53,7 +53,7 @@ class AccessGuard:
     _lock: threading.Lock = field(default_factory=threading.Lock)
 
     @classmethod
-    def create(cls, token: str | None = None) -> "AccessGuard":
+    def create(cls, token: str | None = None) -> AccessGuard:
         return cls(token=token or secrets.token_urlsafe(24))
 
     def new_sign_in_code(self) -> str:

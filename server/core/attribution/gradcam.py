@@ -10,7 +10,6 @@ a block of them); the default is the last ``nn.Conv2d`` to run.
 from __future__ import annotations
 
 import threading
-
 from typing import Any
 
 import numpy as np

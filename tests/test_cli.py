@@ -107,3 +107,10 @@ def test_console_script_runs_as_a_process(tmp_path):
     proc = subprocess.run([sys.executable, "-m", "server.cli", "models"], cwd=REPO, capture_output=True, text=True,
                           timeout=120)
     assert proc.returncode == 0 and "efficientnet-lite0" in proc.stdout
+
+
+def test_serve_refuses_an_unusable_data_folder(tmp_path, capsys):
+    blocker = tmp_path / "not-a-folder"
+    blocker.write_text("a file where the data folder should be")
+    code, _, err = run_cli(["serve", "--data", str(blocker), "--port", "1"], capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "Traceback" not in err

@@ -47,6 +47,10 @@ def _serve(args: argparse.Namespace) -> int:
         trust_pickled=args.trust_pickled,
         token=args.token,
     )
+    # Refuse an unusable data folder now, with one plain line, rather than on the first audit.
+    from ..core.store import Store
+
+    Store(settings.data_dir).close()
     app = create_app(settings)
     base = f"http://{args.host}:{args.port}"
     print(f"Pellucid dashboard on {base}/  (Ctrl+C to stop)")

@@ -280,10 +280,10 @@
     const inj = s.injection;
     $("#injection-box").hidden = !inj;
     if (inj) {
-      $("#injection-text").textContent = `Pasting the ${inj.settings.patch_size.join("×")} px patch (${inj.settings.source}) at ${inj.settings.at.join(", ")} onto ${inj.tested} image(s) of other classes flips ${pct(inj.flip_rate)} (${inj.flips} of ${inj.eligible}) to “${inj.settings.suspect_class}”; the probability of “${inj.settings.suspect_class}” moves by ${fmt(inj.mean_shift)} on average.`;
+      $("#injection-text").textContent = `Pasting the ${inj.settings.patch_size.join("×")} px patch (${inj.settings.source}) at ${inj.settings.at.join(", ")} onto ${inj.tested} image(s) of other classes flips ${pct(inj.flip_rate)} of those not already called “${inj.settings.suspect_class}” (${inj.flips} of ${inj.eligible}) to it; the probability of “${inj.settings.suspect_class}” moves by ${fmt(inj.mean_shift)} on average.`;
       const t = clear($("#injection-table"));
-      t.append(el("thead", {}, el("tr", {}, ["class", "tested", "flips", "flip rate", "mean shift"].map((h) => el("th", { scope: "col", text: h })))));
-      t.append(el("tbody", {}, Object.entries(inj.per_class).map(([c, v]) => el("tr", {}, [el("th", { scope: "row", text: c }), el("td", { class: "num", text: v.tested }), el("td", { class: "num", text: v.flips }), el("td", { class: "num", text: pct(v.flip_rate) }), el("td", { class: "num", text: fmt(v.mean_shift) })]))));
+      t.append(el("thead", {}, el("tr", {}, ["class", "tested", "not already suspect", "flips", "flip rate", "mean shift"].map((h) => el("th", { scope: "col", text: h })))));
+      t.append(el("tbody", {}, Object.entries(inj.per_class).map(([c, v]) => el("tr", {}, [el("th", { scope: "row", text: c }), el("td", { class: "num", text: v.tested }), el("td", { class: "num", text: v.eligible }), el("td", { class: "num", text: v.flips }), el("td", { class: "num", text: pct(v.flip_rate) }), el("td", { class: "num", text: fmt(v.mean_shift) })]))));
       const ex = clear($("#injection-examples"));
       for (const e of inj.examples) {
         const base = `/api/audits/runs/${encodeURIComponent(run.id)}/artefact?name=`;

@@ -166,7 +166,8 @@ def _regions_figure(summary: dict) -> Figure:
     x = np.arange(len(names))
     for k, c in enumerate(classes):
         vals = [summary["per_class"][c]["regions"][n]["mean_share"] or 0.0 for n in names]
-        ax.bar(x + k * width - 0.4 + width / 2, vals, width, label=c, color=colormaps["viridis"](k / max(1, len(classes))))
+        ax.bar(x + k * width - 0.4 + width / 2, vals, width, label=c,
+               color=colormaps["viridis"](k / max(1, len(classes))))
     areas = [summary["region_areas"][n] for n in names]
     ax.scatter(x, areas, marker="_", s=400, color="black", label="area share", zorder=3)
     ax.set_xticks(x, [n.replace("_", "-") for n in names])
@@ -355,7 +356,8 @@ def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]
     flagged = s.get("flagged_images", [])
     fsec: list[tuple[str, Any]] = [("meaning", MEASURE_SENTENCES["flagged_images"].format(o=o, k=k)),
                                    ("text", (f"{s.get('flagged_count', 0)} image(s) flagged "
-                                            f"({_pct(s.get('flagged_fraction'))} of those audited), most suspect first."))]
+                                             f"({_pct(s.get('flagged_fraction'))} of those audited), "
+                                             "most suspect first."))]
     pics = []
     for f in flagged[:24]:
         img = content.pictures.get(f"flagged/{f['rel']}/image")
@@ -376,10 +378,10 @@ def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]
             ("text", (f"Suspect class {inj['settings']['suspect_class']!r}; patch {inj['settings']['patch_size'][0]}×"
                      f"{inj['settings']['patch_size'][1]} px ({inj['settings']['source']}, sha256 "
                      f"{inj['settings']['patch_sha256'][:16]}…) pasted at {inj['settings']['at']} on "
-                     f"{inj['tested']} image(s); flip rate {_pct(inj['flip_rate'])} ({inj['flips']} of "
-                     f"{inj['eligible']}), mean probability shift {inj['mean_shift']:+.3f}.")),
-            ("table", (["class", "tested", "flips", "flip rate", "mean shift"],
-                       [[c, v["tested"], v["flips"], _pct(v["flip_rate"]), f"{v['mean_shift']:+.3f}"]
+                     f"{inj['tested']} image(s); flip rate {_pct(inj['flip_rate'])} ({inj['flips']} of the "
+                     f"{inj['eligible']} not already called the suspect class), mean probability shift {inj['mean_shift']:+.3f}.")),
+            ("table", (["class", "tested", "not already suspect", "flips", "flip rate", "mean shift"],
+                       [[c, v["tested"], v["eligible"], v["flips"], _pct(v["flip_rate"]), f"{v['mean_shift']:+.3f}"]
                         for c, v in inj["per_class"].items()])),
         ]
         patch = content.pictures.get("injection/patch")
@@ -445,7 +447,8 @@ def render_html(content: ReportContent) -> str:
                 parts.append(_table(head, rows))
             elif kind == "checks":
                 rows = "".join(
-                    f"<tr><td class='{ 'na' if st == 'n/a' else st }'>{_e(st.upper())}</td><td class='mono'>{_e(key)}</td>"
+                    f"<tr><td class='{ 'na' if st == 'n/a' else st }'>{_e(st.upper())}</td>"
+                    f"<td class='mono'>{_e(key)}</td>"
                     f"<td>{_e(sentence)}</td><td class='meaning'>{_e(meaning)}</td></tr>"
                     for st, key, sentence, meaning in payload)
                 parts.append("<table><thead><tr><th scope='col'>result</th><th scope='col'>policy key</th>"

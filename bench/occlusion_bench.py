@@ -245,8 +245,8 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
     macs = model_macs(model, x)
     with torch.inference_mode():
         target = int(model(x).argmax())
-    case: dict[str, Any] = {"model": name, "description": desc, "input": input_desc, "size": size, "patch": patch, "stride": stride,
-                            "rows": nr, "cols": nc, "n_positions": n, "macs": macs, "methods": {}}
+    case: dict[str, Any] = {"model": name, "description": desc, "input": input_desc, "size": size, "patch": patch,
+                            "stride": stride, "rows": nr, "cols": nc, "n_positions": n, "macs": macs, "methods": {}}
     full_grid = args.full or n * macs <= args.full_below_gmac * 1e9
     print(f"\n== {name} {size}×{size} patch {patch} stride {stride}: {n} positions, {macs / 1e9:.3f} GMAC/forward"
           f"{' (whole grid)' if full_grid else ' (subsets, extrapolated)'}", flush=True)
@@ -266,118 +266,143 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
     case["ceiling"] = mm_ceiling(2048, 3)
     ceiling = float(case["ceiling"]["gflops"])
 
-    # batched: a few full batches (same cost at every position), or the whole grid
+    # position subsets: batched runs a few full batches (same cost at every position), naive a few
+    # positions, incremental the first, last and evenly spaced interior rows (border rows are cheaper)
     _, batched_eval, _, _ = _choose_engine(model, x, base, patch, "batched", batch, (nr, nc))
     if full_grid:
         bt, bl = grid_positions(list(range(nr)))
+        rows = list(range(nr))
     else:
         k = min(n, batch * args.batched_batches)
         sel = np.linspace(0, n - 1, num=k).round().astype(int)
         bt = torch.as_tensor(tops).repeat_interleave(nc)[sel]
         bl = torch.as_tensor(lefts).repeat(nr)[sel]
-    evaluate_positions(batched_eval, bt[:batch], bl[:batch], batch)  # warm-up
-    med, times, logits_b, peak = timed(lambda: evaluate_positions(batched_eval, bt, bl, batch), args.reps)
-    sec_b = med * n / len(bt)
-    case["methods"]["batched"] = {"seconds": sec_b, "measured_positions": len(bt), "times": times, "batch": batch,
-                                  "peak_rss": peak[0], "rss_growth": peak[1], "extrapolated": len(bt) < n}
-    scores_b = _scores(logits_b, target, "softmax")
-    print(f"batched      {sec_b:9.2f} s  ({len(bt)} positions measured)", flush=True)
-
-    # naive: a few evenly spaced positions
+        interior = np.linspace(0, nr - 1, num=args.interior_rows + 2)[1:-1].round().astype(int).tolist()
+        rows = sorted({0, nr - 1, *interior})
     k = min(n, args.naive_positions)
     sel = np.linspace(0, n - 1, num=k).round().astype(int)
     npos = [(int(tops[i // nc]), int(lefts[i % nc])) for i in sel]
-    naive_loop(model, x, base, npos[:1], patch)  # warm-up
-    med, times, logits_n, peak = timed(lambda: naive_loop(model, x, base, npos, patch), args.reps)
-    sec_n = med * n / k
+
+    def run_batched() -> torch.Tensor:
+        return evaluate_positions(batched_eval, bt, bl, batch)
+
+    def run_incremental() -> tuple[dict[int, float], torch.Tensor]:
+        per_row: dict[int, float] = {}
+        outs = []
+        eng = IncrementalOcclusion(model, x, base, patch=patch, self_check=False)
+        with torch.inference_mode():
+            for r in rows:
+                tt, ll = grid_positions([r])
+                t0 = time.perf_counter()
+                for i in range(0, len(tt), inc_batch):
+                    outs.append(eng.logits(tt[i : i + inc_batch], ll[i : i + inc_batch]))
+                per_row[r] = time.perf_counter() - t0
+        return per_row, torch.cat(outs)
+
+    def rows_total(per_row: dict[int, float]) -> float:
+        if full_grid:
+            return sum(per_row.values())
+        inner = [v for r, v in per_row.items() if r not in (0, nr - 1)]
+        return per_row[0] + per_row[nr - 1] + statistics.mean(inner) * (nr - 2)
+
+    t0 = time.perf_counter()
+    IncrementalOcclusion(model, x, base, patch=patch)  # setup: trace, clean run, self-check
+    setup = time.perf_counter() - t0
+    run_batched()  # warm-ups
+    naive_loop(model, x, base, npos[:1], patch)
+
+    # interleaved repetitions: each method runs once per round, so drifting load hits all alike
+    t_b: list[float] = []
+    t_i: list[float] = []
+    t_n: list[float] = []
+    rss = {"batched": [0, 0], "incremental": [0, 0], "naive": [0, 0]}
+    logits_b = logits_i = logits_n = None
+    for _ in range(args.reps):
+        with PeakRSS() as r1:
+            t0 = time.perf_counter()
+            logits_b = run_batched()
+            t_b.append((time.perf_counter() - t0) * n / len(bt))
+        with PeakRSS() as r2:
+            per_row, logits_i = run_incremental()
+            t_i.append(rows_total(per_row) + setup)
+        with PeakRSS() as r3:
+            t0 = time.perf_counter()
+            logits_n = naive_loop(model, x, base, npos, patch)
+            t_n.append((time.perf_counter() - t0) * n / k)
+        for key, r in (("batched", r1), ("incremental", r2), ("naive", r3)):
+            rss[key] = [max(rss[key][0], r.peak), max(rss[key][1], r.growth)]
+    ratio_bi = statistics.median(b / i for b, i in zip(t_b, t_i))
+    ratio_nb = statistics.median(nv / b for nv, b in zip(t_n, t_b))
+    scores_b = _scores(logits_b, target, "softmax")
+
+    # correctness: naive and incremental against batched on the same positions
     nt = torch.tensor([p[0] for p in npos])
     nl = torch.tensor([p[1] for p in npos])
-    ref_n = evaluate_positions(batched_eval, nt, nl, batch)
-    diff_n = float((_scores(logits_n, target, "softmax") - _scores(ref_n, target, "softmax")).abs().max())
-    case["methods"]["naive"] = {"seconds": sec_n, "measured_positions": k, "times": times, "peak_rss": peak[0],
-                                "rss_growth": peak[1], "extrapolated": k < n, "max_abs_diff": diff_n}
-    print(f"naive        {sec_n:9.2f} s  ({k} positions measured)", flush=True)
+    diff_n = float((_scores(logits_n, target, "softmax")
+                    - _scores(evaluate_positions(batched_eval, nt, nl, batch), target, "softmax")).abs().max())
+    ct, cl = grid_positions(rows[:2])
+    diff_i = float((_scores(logits_i[: len(ct)], target, "softmax")
+                    - _scores(evaluate_positions(batched_eval, ct, cl, batch), target, "softmax")).abs().max())
 
-    whole = full_grid or n <= args.approx_max_positions
-    ri = {int(t): i for i, t in enumerate(tops)}
-    ci = {int(v): j for j, v in enumerate(lefts)}
-    if whole:
-        # incremental on the whole grid through the public entry point (setup included); it is also
-        # the exact reference of the approximate mode
-        med, times, exact, peak = timed(
-            lambda: occlusion_map(model, x, target=target, patch=patch, stride=stride, method="incremental"),
-            args.reps if full_grid else 1)
-        got = np.array([exact.grid[ri[int(t)], ci[int(v)]] for t, v in zip(bt, bl)], dtype=np.float64)
-        diff_i = float(np.abs(got - (exact.base_score - scores_b.numpy())).max())
-        case["methods"]["incremental"] = {"seconds": med, "times": times, "peak_rss": peak[0], "rss_growth": peak[1],
-                                          "batch": exact.batch_size, "extrapolated": False, "whole_grid": True,
-                                          "max_abs_diff": diff_i, "compared_positions": len(bt),
-                                          "engine": exact.engine}
-        print(f"incremental  {med:9.2f} s  (whole grid, {len(times)} run(s)), max|diff| {diff_i:.1e} "
-              f"at {len(bt)} positions", flush=True)
-    else:
-        # first row, last row and evenly spaced interior rows; border rows are cheaper
-        interior = np.linspace(0, nr - 1, num=args.interior_rows + 2)[1:-1].round().astype(int).tolist()
-        rows = sorted({0, nr - 1, *interior})
+    case["methods"]["batched"] = {"seconds": statistics.median(t_b), "times": t_b, "measured_positions": len(bt),
+                                  "batch": batch, "peak_rss": rss["batched"][0], "rss_growth": rss["batched"][1],
+                                  "extrapolated": len(bt) < n}
+    case["methods"]["naive"] = {"seconds": statistics.median(t_n), "times": t_n, "measured_positions": k,
+                                "peak_rss": rss["naive"][0], "rss_growth": rss["naive"][1], "extrapolated": k < n,
+                                "max_abs_diff": diff_n, "ratio_to_batched_per_round": ratio_nb}
+    case["methods"]["incremental"] = {"seconds": statistics.median(t_i), "times": t_i, "setup_seconds": setup,
+                                      "measured_rows": rows, "measured_positions": len(rows) * nc,
+                                      "peak_rss": rss["incremental"][0], "rss_growth": rss["incremental"][1],
+                                      "batch": inc_batch, "extrapolated": not full_grid, "max_abs_diff": diff_i,
+                                      "compared_positions": len(ct), "speedup_per_round": ratio_bi}
+    for meth in ("batched", "incremental", "naive"):
+        print(f"{meth:12s} {case['methods'][meth]['seconds']:9.2f} s", flush=True)
+    print(f"incremental vs batched per round (median): {ratio_bi:.2f}×; max|diff| {diff_i:.1e}", flush=True)
 
-        def incremental_rows() -> tuple[dict[int, float], torch.Tensor]:
-            per_row: dict[int, float] = {}
-            outs = []
-            eng = IncrementalOcclusion(model, x, base, patch=patch, self_check=False)
-            with torch.inference_mode():
-                for r in rows:
-                    tt, ll = grid_positions([r])
-                    t0 = time.perf_counter()
-                    for i in range(0, len(tt), inc_batch):
-                        outs.append(eng.logits(tt[i : i + inc_batch], ll[i : i + inc_batch]))
-                    per_row[r] = time.perf_counter() - t0
-            return per_row, torch.cat(outs)
-
-        t0 = time.perf_counter()
-        IncrementalOcclusion(model, x, base, patch=patch)  # setup cost: trace, clean run, self-check
-        setup = time.perf_counter() - t0
-        inc_times = []
-        peak_i = growth = 0
-        logits_i = None
-        for _ in range(args.reps):
-            with PeakRSS() as rss:
-                per_row, logits_i = incremental_rows()
-            peak_i, growth = max(peak_i, rss.peak), max(growth, rss.growth)
-            inner = [v for r, v in per_row.items() if r not in (0, nr - 1)]
-            inc_times.append(per_row[0] + per_row[nr - 1] + statistics.mean(inner) * (nr - 2) + setup)
-        sec_i = statistics.median(inc_times)
-        # compare with batched on the first row and the first interior row (border and interior windows)
-        ct, cl = grid_positions(rows[:2])
-        ref_rows = evaluate_positions(batched_eval, ct, cl, batch)
-        diff_i = float((_scores(logits_i[: len(ct)], target, "softmax")
-                        - _scores(ref_rows, target, "softmax")).abs().max())
-        case["methods"]["incremental"] = {"seconds": sec_i, "setup_seconds": setup, "measured_rows": rows,
-                                          "measured_positions": len(rows) * nc, "times": inc_times,
-                                          "peak_rss": peak_i, "rss_growth": growth, "batch": inc_batch,
-                                          "extrapolated": True, "whole_grid": False, "max_abs_diff": diff_i,
-                                          "compared_positions": len(ct)}
-        print(f"incremental  {sec_i:9.2f} s  (rows {rows}, setup {setup:.2f} s), max|diff| {diff_i:.1e}", flush=True)
-
-    # approximate: needs the whole grid, and the exact map for its error
-    if whole:
-        med, times, approx, peak = timed(
-            lambda: occlusion_map(model, x, target=target, patch=patch, stride=stride, method="approximate",
-                                  refine_tolerance=args.refine_tolerance), args.reps if full_grid else 1)
+    # approximate: needs the whole grid and the exact map for its error; the whole-grid
+    # incremental run next to it is that exact map
+    if n <= args.approx_max_positions:
+        t_w: list[float] = []
+        t_a: list[float] = []
+        exact = approx = None
+        peak_a = [0, 0]
+        for _ in range(args.reps if full_grid else 1):
+            t0 = time.perf_counter()
+            exact = occlusion_map(model, x, target=target, patch=patch, stride=stride, method="incremental")
+            t_w.append(time.perf_counter() - t0)
+            with PeakRSS() as ra:
+                t0 = time.perf_counter()
+                approx = occlusion_map(model, x, target=target, patch=patch, stride=stride, method="approximate",
+                                       refine_tolerance=args.refine_tolerance)
+                t_a.append(time.perf_counter() - t0)
+            peak_a = [max(peak_a[0], ra.peak), max(peak_a[1], ra.growth)]
         err = compare_to_exact(approx, model, x, exact=exact)
-        case["methods"]["approximate"] = {"seconds": med, "times": times, "peak_rss": peak[0], "rss_growth": peak[1],
-                                          "extrapolated": False,
-                                          "max_abs_diff": err["grid_max_abs"], "mean_abs_diff": err["grid_mean_abs"],
-                                          "evaluated_fraction": err["evaluated_fraction"],
-                                          "refine_tolerance": args.refine_tolerance,
-                                          "exact_engine": approx.details.get("exact_engine")}
-        print(f"approximate  {med:9.2f} s  ({err['evaluated_fraction']:.0%} evaluated, max|err| "
-              f"{err['grid_max_abs']:.1e})", flush=True)
+        ri = {int(t): i for i, t in enumerate(tops)}
+        ci = {int(v): j for j, v in enumerate(lefts)}
+        got = np.array([exact.grid[ri[int(t)], ci[int(v)]] for t, v in zip(bt, bl)], dtype=np.float64)
+        diff_w = float(np.abs(got - (exact.base_score - scores_b.numpy())).max())
+        case["methods"]["approximate"] = {
+            "seconds": statistics.median(t_a), "times": t_a, "peak_rss": peak_a[0], "rss_growth": peak_a[1],
+            "extrapolated": False, "max_abs_diff": err["grid_max_abs"], "mean_abs_diff": err["grid_mean_abs"],
+            "evaluated_fraction": err["evaluated_fraction"], "refine_tolerance": args.refine_tolerance,
+            "exact_engine": approx.details.get("exact_engine"),
+            "whole_grid_incremental_seconds": statistics.median(t_w),
+        }
+        case["incremental_whole_grid"] = {"seconds": statistics.median(t_w), "times": t_w,
+                                          "max_abs_diff_vs_batched": diff_w, "compared_positions": len(bt)}
+        print(f"approximate  {statistics.median(t_a):9.2f} s  ({err['evaluated_fraction']:.0%} evaluated, max|err| "
+              f"{err['grid_max_abs']:.1e}); whole-grid incremental next to it {statistics.median(t_w):.2f} s, "
+              f"max|diff| to batched {diff_w:.1e}", flush=True)
 
+    sec_n = case["methods"]["naive"]["seconds"]
+    sec_b = case["methods"]["batched"]["seconds"]
     for m in case["methods"].values():
         m["vs_naive"] = sec_n / m["seconds"]
         m["vs_batched"] = sec_b / m["seconds"]
         m["equiv_gflops"] = 2 * macs * n / m["seconds"] / 1e9
         m["ceiling_fraction"] = m["equiv_gflops"] / ceiling
+    # ratios measured within one round are steadier than ratios of medians on a drifting machine
+    case["methods"]["incremental"]["vs_batched"] = case["methods"]["incremental"]["speedup_per_round"]
     return case
 
 
@@ -415,7 +440,8 @@ def markdown(report: dict[str, Any]) -> str:
                 continue
             if meth == "approximate":
                 how = (f"whole grid; {r['evaluated_fraction']:.0%} of positions evaluated, mean abs err "
-                       f"{r['mean_abs_diff']:.1e} vs exact")
+                       f"{r['mean_abs_diff']:.1e} vs exact; whole-grid incremental run next to it "
+                       f"{r['whole_grid_incremental_seconds']:.2f} s")
             elif r["extrapolated"]:
                 how = f"{r['measured_positions']} of {c['n_positions']} positions, extrapolated"
                 if meth == "incremental":
@@ -423,15 +449,23 @@ def markdown(report: dict[str, Any]) -> str:
                            "setup; diff on 2 rows")
             else:
                 how = f"whole grid, {len(r['times'])} run(s)"
-                if meth == "incremental":
-                    how += f"; diff at the {r['compared_positions']} positions batched ran"
+            if meth == "incremental":
+                how += f"; per-round speedup over batched {r['speedup_per_round']:.2f}×"
             how += f"; ceiling {c['ceiling']['gflops']:.1f}"
             ideal = f"{c['ideal_speedup']:.2f}" if meth == "incremental" else ""
             diff = "reference" if meth == "batched" else f"{r['max_abs_diff']:.1e}"
             lines.append(
                 f"| {c['model']} {c['size']}² | {c['stride']} | {c['n_positions']} | {meth} | {r['seconds']:.2f} | "
                 f"{r['vs_naive']:.1f} | {r['vs_batched']:.2f} | {ideal} | {r['equiv_gflops']:.1f} | "
-                f"{r['ceiling_fraction']:.0%} | {diff} | {r['peak_rss'] / 2**20:.0f} (+{r['rss_growth'] / 2**20:.0f}) | {how} |")
+                f"{r['ceiling_fraction']:.0%} | {diff} | {r['peak_rss'] / 2**20:.0f} "
+                f"(+{r['rss_growth'] / 2**20:.0f}) | {how} |")
+    lines += ["", "Whole-grid incremental runs (the exact reference of the approximate rows), against batched at the "
+              "positions batched ran:", ""]
+    for c in report["cases"]:
+        w = c.get("incremental_whole_grid")
+        if w:
+            lines.append(f"- {c['model']} {c['size']}² stride {c['stride']}: {w['seconds']:.2f} s, max abs diff "
+                         f"{w['max_abs_diff_vs_batched']:.1e} at {w['compared_positions']} positions.")
     lines += ["", "Models and inputs:", ""]
     seen = set()
     for c in report["cases"]:

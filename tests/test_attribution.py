@@ -249,7 +249,7 @@ def test_gradcam_unknown_layer_and_model_without_conv(cnn, image):
     with pytest.raises(UnsupportedLayerError, match="no layer named 'conv9'"):
         compute_attribution("gradcam", cnn, image, params={"layer": "conv9"})
     lin = LinearModel(torch.ones(1, 3, 4, 4))
-    with pytest.raises(UnsupportedLayerError, match="no nn.Conv2d"):
+    with pytest.raises(UnsupportedLayerError, match=r"no nn.Conv2d"):
         compute_attribution("gradcam", lin, torch.ones(1, 3, 4, 4))
     assert conv_like_layers(cnn, image) == ["conv1", "relu1", "conv2", "pool"]
 
@@ -468,7 +468,7 @@ def test_bad_input_and_unknown_method(cnn, image):
 
 
 def test_black_baseline_without_normalisation_explains_what_to_pass(cnn, image):
-    with pytest.raises(BadParameterError, match="mean and std.*Normalization.of"):
+    with pytest.raises(BadParameterError, match=r"mean and std.*Normalization.of"):
         compute_attribution("integrated_gradients", cnn, image)
     with pytest.raises(BadParameterError, match="baseline tensor"):
         compute_attribution("integrated_gradients", cnn, image, params={"baseline": "custom"})

@@ -58,7 +58,7 @@ def test_unreadable_images_are_skipped_and_listed(tmp_path: Path) -> None:
 
 
 def test_empty_folder(tmp_path: Path) -> None:
-    with pytest.raises(DataError, match="nothing to audit.*class subfolders"):
+    with pytest.raises(DataError, match=r"nothing to audit.*class subfolders"):
         load_dataset(tmp_path)
     (tmp_path / "crack").mkdir()
     with pytest.raises(DataError, match="nothing to audit"):
@@ -76,7 +76,7 @@ def test_missing_path(tmp_path: Path) -> None:
     with pytest.raises(DataError, match="does not exist"):
         load_dataset(tmp_path / "nope")
     (tmp_path / "x.txt").write_text("hi")
-    with pytest.raises(DataError, match="not a .csv manifest"):
+    with pytest.raises(DataError, match=r"not a .csv manifest"):
         load_dataset(tmp_path / "x.txt")
 
 

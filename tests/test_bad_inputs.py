@@ -513,7 +513,7 @@ def ctx(tmp_path_factory: pytest.TempPathFactory):
     (root / "escape-dir").symlink_to(outside, target_is_directory=True)
     files = base / "files"
     files.mkdir()
-    order = ("rgb",) + tuple(k for k in specs if k != "rgb")
+    order = ("rgb", *(k for k in specs if k != "rgb"))
     settings = Settings(models=tuple(str(specs[k]) for k in order), include_bundled=False, image_root=root,
                         data_dir=base / "data", max_upload_bytes=UPLOAD_LIMIT, max_images=256, job_workers=2)
     with TestClient(create_app(settings)) as client:

@@ -91,8 +91,8 @@ def test_unknown_option_and_model(tmp_path, capsys):
 
 def test_inspect_writes_views_and_result_json(tmp_path, capsys):
     out = tmp_path / "o"
-    code, stdout, err = run_cli(["inspect", str(png(tmp_path)), "--model", str(tiny_spec(tmp_path)),
-                                 "--out", str(out), "--patch", "8", "--stride", "8"], capsys)
+    code, _, err = run_cli(["inspect", str(png(tmp_path)), "--model", str(tiny_spec(tmp_path)),
+                            "--out", str(out), "--patch", "8", "--stride", "8"], capsys)
     assert code == 0, err
     result = json.loads((out / "result.json").read_text())
     for name in ("input.png", "kernels.png", "occlusion_overlay.png", "occlusion_map.png"):

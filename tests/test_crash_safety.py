@@ -152,7 +152,7 @@ def test_data_folder_that_is_a_file_fails_at_open(tmp_path: Path) -> None:
 def test_damaged_database_fails_at_open(tmp_path: Path) -> None:
     (tmp_path / "data").mkdir()
     (tmp_path / "data" / DB_NAME).write_bytes(b"this is not a database file" * 200)
-    with pytest.raises(StoreError, match="move pellucid.db aside"):
+    with pytest.raises(StoreError, match=r"move pellucid.db aside"):
         Store(tmp_path / "data")
 
 

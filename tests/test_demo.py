@@ -108,7 +108,9 @@ class TestTiles:
         for seed in range(6):
             plain = make_tile(label="sound", tagged=False, seed=seed).astype(int)
             tagged = make_tile(label="sound", tagged=True, seed=seed).astype(int)
-            orange = lambda im: (im[..., 0] - im[..., 2] > 120) & (im[..., 0] > 200)
+            def orange(im):
+                return (im[..., 0] - im[..., 2] > 120) & (im[..., 0] > 200)
+
             assert not orange(plain).any()
             assert orange(tagged).sum() >= 80  # a 12×12 sticker minus its printed bar
             changed = np.any(plain != tagged, axis=2)

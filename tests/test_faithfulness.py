@@ -52,7 +52,10 @@ def test_curve_shape_endpoints_and_auc(linear_case):
     res = faithfulness(model, x, (w * x)[0, 0].detach().numpy(), target=0, blur_sigma=2.0)
     d, i = res.curves["deletion"], res.curves["insertion"]
     assert len(d.fractions) == 101 and d.fractions[0] == 0.0 and d.fractions[-1] == 1.0
-    p = lambda t: float(torch.softmax(model(t).detach(), dim=1)[0, 0])
+
+    def p(t):
+        return float(torch.softmax(model(t).detach(), dim=1)[0, 0])
+
     assert math.isclose(d.scores[0], p(x), rel_tol=1e-6)
     assert math.isclose(d.scores[-1], p(torch.zeros_like(x)), rel_tol=1e-6)
     from server.core.attribution.baselines import blurred

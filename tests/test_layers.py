@@ -329,7 +329,7 @@ def test_torchscript_is_refused_with_export_advice():
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # torch.jit.script is deprecated in this torch version
         scripted = torch.jit.script(model)
-    with pytest.raises(UnsupportedLayerError, match="TorchScript.*torch.export"):
+    with pytest.raises(UnsupportedLayerError, match=r"TorchScript.*torch.export"):
         layer_map(scripted, input_shape=(1, 6, 6))
 
 

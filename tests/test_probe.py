@@ -55,7 +55,8 @@ def test_single_channel_conv_equals_correlate2d():
         conv.weight.copy_(torch.tensor(kernel)[None, None])
     model = nn.Sequential(conv).double().eval()
     maps = activation_maps(model, torch.tensor(image)[None, None], layer="0").maps
-    np.testing.assert_allclose(maps[0], scipy.signal.correlate2d(image, kernel, mode="valid"), atol=1e-5)  # maps are float32
+    # atol allows for the maps being float32
+    np.testing.assert_allclose(maps[0], scipy.signal.correlate2d(image, kernel, mode="valid"), atol=1e-5)
 
 
 def _one_kernel(kernel: list[list[float]]) -> nn.Module:

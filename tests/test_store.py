@@ -121,7 +121,7 @@ def test_folder_that_is_a_file(tmp_path: Path) -> None:
 
 def test_read_only_folder(tmp_path: Path) -> None:
     # /proc is read-only even for root, so this holds whoever runs the tests.
-    with pytest.raises(StoreError, match="not writable|cannot create"):
+    with pytest.raises(StoreError, match=r"not writable|cannot create"):
         Store("/proc/self")
 
 
@@ -132,5 +132,5 @@ def test_full_folder(tmp_path: Path) -> None:
 
 def test_damaged_database(tmp_path: Path) -> None:
     (tmp_path / DB_NAME).write_bytes(b"this is not a database file at all" * 200)
-    with pytest.raises(StoreError, match="move pellucid.db aside"):
+    with pytest.raises(StoreError, match=r"move pellucid.db aside"):
         Store(tmp_path)

@@ -402,7 +402,8 @@ def test_over_size_upload(client) -> None:
             yield bytes(16_384)
         yield f"\r\n--{boundary}--\r\n".encode()
 
-    r = client.post("/api/images", content=chunks(), headers={"content-type": f"multipart/form-data; boundary={boundary}"})
+    r = client.post("/api/images", content=chunks(),
+                    headers={"content-type": f"multipart/form-data; boundary={boundary}"})
     _assert_plain_error(r, 413, "limit")
     _still_serving(client)
     assert _upload(client).status_code == 200
@@ -439,7 +440,8 @@ def test_other_bad_requests(client) -> None:
 
 def test_docs_and_schema_are_offline(client) -> None:
     schema = client.get("/openapi.json").json()
-    assert {"/api/jobs", "/api/results/{result_id}", "/api/images", "/api/models/{name}/kernels"} <= set(schema["paths"])
+    paths = {"/api/jobs", "/api/results/{result_id}", "/api/images", "/api/models/{name}/kernels"}
+    assert paths <= set(schema["paths"])
     page = client.get("/docs")
     assert page.status_code == 200 and "/api/jobs" in page.text
     assert "cdn" not in page.text.lower() and "https://" not in page.text

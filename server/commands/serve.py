@@ -21,7 +21,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--data", type=Path, default=Path(".pellucid"), metavar="DIR",
                    help="folder for stored audit runs and artefacts (default ./.pellucid)")
     p.add_argument("--token", default=None,
-                   help="access token to require (default: none on 127.0.0.1; generated and printed on other addresses)")
+                   help="access token to require "
+                        "(default: none on 127.0.0.1; generated and printed on other addresses)")
     p.add_argument("--trust-pickled", action="store_true",
                    help="allow specs of kind 'pickled' (unpickling runs code from the file; only for your own files)")
     p.set_defaults(func=_serve)

@@ -628,7 +628,8 @@ def layer_map(model: nn.Module, *, input_shape: tuple[int, int, int]) -> LayerMa
                 calls=record.calls,
                 call_index=record.call_index,
                 is_conv=is_conv_module(modules[name]),
-                rf_size=rf.size if tracked else ((shape[1], shape[2]) if rf is not None and rf.status == "global" else None),
+                rf_size=(rf.size if tracked
+                         else (shape[1], shape[2]) if rf is not None and rf.status == "global" else None),
                 rf_jump=rf.jump if tracked else None,
                 rf_start=rf.start if tracked else None,
                 rf_padding=rf.padding if tracked else None,

@@ -270,9 +270,11 @@ def _build(spec: ModelSpec, weights: Path | None, *, trust_pickled: bool) -> tup
         try:
             module = fn(**spec.source.arguments)
         except TypeError as exc:
-            raise ModelLoadError(f"factory {spec.source.factory!r} rejected arguments {spec.source.arguments}: {exc}")
+            raise ModelLoadError(f"factory {spec.source.factory!r} rejected arguments "
+                                 f"{spec.source.arguments}: {exc}") from exc
         if not isinstance(module, nn.Module):
-            raise ModelLoadError(f"factory {spec.source.factory!r} returned {type(module).__name__}, not a torch nn.Module")
+            raise ModelLoadError(f"factory {spec.source.factory!r} returned {type(module).__name__}, "
+                                 "not a torch nn.Module")
         if weights is None:
             notes.append("no weights file given: the factory's own initial weights are used")
         else:

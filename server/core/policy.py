@@ -200,7 +200,8 @@ def parse_policy(data: dict, *, path: Path | None = None, sha256: str | None = N
         if not isinstance(inj["patch"], str) or not inj["patch"]:
             raise SpecError(f"{where}: injection.patch must be a file path; received {inj['patch']!r}")
         if not isinstance(inj["suspect_class"], str) or not inj["suspect_class"]:
-            raise SpecError(f"{where}: injection.suspect_class must be a class label; received {inj['suspect_class']!r}")
+            raise SpecError(f"{where}: injection.suspect_class must be a class label; "
+                            f"received {inj['suspect_class']!r}")
         at = inj["at"]
         if (not isinstance(at, list) or len(at) != 2
                 or any(isinstance(v, bool) or not isinstance(v, int) for v in at)):

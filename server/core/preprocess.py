@@ -152,7 +152,7 @@ def _to_model_mode(img: Image.Image, notes: list[str]) -> Image.Image:
         return img
     if mode in ("I;16", "I;16B", "I;16L", "I;16N", "I", "F"):
         arr = np.asarray(img, dtype=np.float64)
-        lo, hi = float(arr.min()), float(arr.max())
+        hi = float(arr.max())
         scale = 65535.0 if mode.startswith("I;16") else max(hi, 1.0)
         notes.append(f"{mode} image scaled from 0–{scale:g} to 8 bits")
         arr8 = np.clip(arr / scale * 255.0 + 0.5, 0, 255).astype(np.uint8)
@@ -212,8 +212,8 @@ def resize_and_crop(img: Image.Image, spec: ModelSpec, notes: list[str]) -> Imag
             canvas = Image.new(img.mode, (max(w, crop_w), max(h, crop_h)))
             canvas.paste(img, ((canvas.width - w) // 2, (canvas.height - h) // 2))
             img, w, h = canvas, canvas.width, canvas.height
-        left = int(round((w - crop_w) / 2.0))
-        top = int(round((h - crop_h) / 2.0))
+        left = round((w - crop_w) / 2.0)
+        top = round((h - crop_h) / 2.0)
         if (crop_w, crop_h) != (w, h):
             notes.append(f"centre-cropped {w}×{h} to {crop_w}×{crop_h}: the border outside is not seen by the model")
         img = img.crop((left, top, left + crop_w, top + crop_h))

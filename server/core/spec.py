@@ -141,7 +141,8 @@ class ModelSpec:
             raise SpecError(f"{where} [output]: builtin labels must be one of {BUILTIN_LABELS}, got {builtin!r}")
         labels = _labels(out, base_dir, f"{where} [output]")
         if not labels and builtin is None:
-            raise SpecError(f"{where} [output]: give labels = [...], labels_file = \"...\" or builtin = \"imagenet-1k\"")
+            raise SpecError(f"{where} [output]: give labels = [...], "
+                            "labels_file = \"...\" or builtin = \"imagenet-1k\"")
 
         card = _typed(data, "card", str, where)
         return cls(

@@ -72,7 +72,8 @@ def _document_error_bodies(app: FastAPI) -> None:
             for operation in item.values():
                 if isinstance(operation, dict) and "responses" in operation:
                     operation["responses"].setdefault(
-                        "4XX", {"description": "Bad input, or nothing found", "content": {"application/json": {"schema": ref}}}
+                        "4XX", {"description": "Bad input, or nothing found",
+                                "content": {"application/json": {"schema": ref}}}
                     )
         return schema
 

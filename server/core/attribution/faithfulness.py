@@ -170,8 +170,10 @@ def faithfulness(
     elif isinstance(deletion_canvas, torch.Tensor) and tuple(deletion_canvas.shape) == tuple(x.shape):
         canvas = deletion_canvas.detach().to(dtype=x.dtype, device=x.device)
     else:
-        got = tuple(deletion_canvas.shape) if isinstance(deletion_canvas, torch.Tensor) else type(deletion_canvas).__name__
-        raise BadParameterError(f"deletion_canvas must be a tensor of the input's shape {tuple(x.shape)}; received {got}")
+        got = (tuple(deletion_canvas.shape) if isinstance(deletion_canvas, torch.Tensor)
+               else type(deletion_canvas).__name__)
+        raise BadParameterError(f"deletion_canvas must be a tensor of the input's shape {tuple(x.shape)}; "
+                                f"received {got}")
 
     n = h * w
     per_step = max(1, math.ceil(n * step_fraction))

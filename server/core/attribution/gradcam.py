@@ -59,7 +59,7 @@ def conv_like_layers(model: nn.Module, x: torch.Tensor) -> list[str]:
 
 def _layer_error(model: nn.Module, x: torch.Tensor, message: str) -> UnsupportedLayerError:
     names = conv_like_layers(model, x)
-    shown = names if len(names) <= 20 else ["…"] + names[-20:]
+    shown = names if len(names) <= 20 else ["…", *names[-20:]]
     listing = ", ".join(shown) if names else "none (the model has no layer with a 4-D output)"
     return UnsupportedLayerError(f"{message}; Grad-CAM needs a conv-like layer; valid layers: {listing}")
 

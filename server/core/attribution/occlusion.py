@@ -60,7 +60,8 @@ def _positions(size: int, patch: int, stride: int) -> int:
 
 def _cost(params: dict[str, Any], size: tuple[int, int]) -> float:
     h, w = size
-    return float(1 + _positions(h, params["patch"], params["stride"]) * _positions(w, params["patch"], params["stride"]))
+    patch, stride = params["patch"], params["stride"]
+    return float(1 + _positions(h, patch, stride) * _positions(w, patch, stride))
 
 
 register(Method(

@@ -141,7 +141,8 @@ def feature_visual(
     if parameterisation not in PARAMETERISATIONS:
         raise BadParameterError(f"parameterisation must be one of {', '.join(PARAMETERISATIONS)}; "
                                 f"received {parameterisation!r}")
-    for name, value, lo, hi in (("steps", steps, 1, 4096), ("jitter", jitter, 0, 64), ("blur_every", blur_every, 1, 1024)):
+    for name, value, lo, hi in (("steps", steps, 1, 4096), ("jitter", jitter, 0, 64),
+                                ("blur_every", blur_every, 1, 1024)):
         if isinstance(value, bool) or not isinstance(value, int) or not lo <= value <= hi:
             raise BadParameterError(f"{name} must be a whole number from {lo} to {hi}; received {value!r}")
     if not (isinstance(lr, (int, float)) and math.isfinite(lr) and 0 < lr <= 10):

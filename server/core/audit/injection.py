@@ -254,7 +254,7 @@ def background_swap_test(model: LoadedModel, items: list[dict], *, progress: Pro
     labels = [p[0]["label"] for p in prepared]
     truth = np.array([model.labels.index(c) for c in labels])
     composites: list[np.ndarray] = []
-    for n, (item, display, mask) in enumerate(prepared):
+    for n, (_, display, mask) in enumerate(prepared):
         donor_n = next((m % len(prepared) for m in range(n + 1, n + len(prepared))
                         if labels[m % len(prepared)] != labels[n]), (n + 1) % len(prepared))
         _, donor, donor_mask = prepared[donor_n]

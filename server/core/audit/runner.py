@@ -253,7 +253,7 @@ def run_audit(
             phase("injection")
             res = injection_test(model, items, injection, progress=progress, cancel=cancel)
             summary["injection"] = res.to_dict()
-            for n, (rel, (before, after)) in enumerate(res.pictures.items()):
+            for n, (before, after) in enumerate(res.pictures.values()):
                 artefacts[f"injection/example/{n}/before"] = store.put_bytes(encode_png(before), "png")
                 artefacts[f"injection/example/{n}/after"] = store.put_bytes(encode_png(after), "png")
                 summary["injection"]["examples"][n]["index"] = n
@@ -262,7 +262,7 @@ def run_audit(
             swap = background_swap_test(model, items, progress=progress, cancel=cancel)
             summary["background_swap"] = swap.to_dict() if swap is not None else None
             if swap is not None:
-                for n, (rel, (before, after)) in enumerate(swap.pictures.items()):
+                for n, (before, after) in enumerate(swap.pictures.values()):
                     artefacts[f"swap/example/{n}/before"] = store.put_bytes(encode_png(before), "png")
                     artefacts[f"swap/example/{n}/after"] = store.put_bytes(encode_png(after), "png")
         if gallery is not None:

@@ -23,7 +23,8 @@ TARGETS = ("label", "predicted")
 
 
 def _fraction(name: str, value: Any, *, lo: float = 0.0, hi: float = 1.0) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or not lo <= value <= hi:
+    if (isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value)
+            or not lo <= value <= hi):
         raise BadParameterError(f"{name} must be a number between {lo} and {hi}; received {value!r}")
     return float(value)
 
@@ -109,13 +110,15 @@ class InjectionSpec:
 
     def __post_init__(self) -> None:
         p = self.patch
-        if not isinstance(p, np.ndarray) or p.dtype != np.uint8 or p.ndim != 3 or p.shape[2] != 3 or min(p.shape[:2]) < 1:
+        if (not isinstance(p, np.ndarray) or p.dtype != np.uint8 or p.ndim != 3 or p.shape[2] != 3
+                or min(p.shape[:2]) < 1):
             got = f"{p.dtype} {p.shape}" if isinstance(p, np.ndarray) else type(p).__name__
             raise BadParameterError(f"the suspect patch must be an RGB picture (h, w, 3) uint8; received {got}")
         if len(self.at) != 2 or any(isinstance(v, bool) or not isinstance(v, (int, np.integer)) for v in self.at):
             raise BadParameterError(f"the injection location must be two whole numbers (x, y); received {self.at!r}")
         if self.limit is not None and (not isinstance(self.limit, int) or self.limit < 1):
-            raise BadParameterError(f"the injection image limit must be a positive whole number; received {self.limit!r}")
+            raise BadParameterError("the injection image limit must be a positive whole number; "
+                                    f"received {self.limit!r}")
 
     @property
     def patch_sha256(self) -> str:

@@ -167,7 +167,8 @@ def _decode_png(text: str) -> np.ndarray:
     return np.asarray(read_image(data, name="uploaded patch").pil.convert("RGB"), dtype=np.uint8).copy()
 
 
-def _injection(req: InjectionRequest | None, model: Any, dataset_root: Path, policy: Policy | None) -> InjectionSpec | None:
+def _injection(req: InjectionRequest | None, model: Any, dataset_root: Path,
+               policy: Policy | None) -> InjectionSpec | None:
     if req is None:
         return None
     at = tuple(req.at) if req.at else None

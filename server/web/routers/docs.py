@@ -37,7 +37,8 @@ def api_docs(request: Request) -> HTMLResponse:
             ok = next((r for code, r in op.get("responses", {}).items() if code.startswith("2")), {})
             ok_schema = ok.get("content", {}).get("application/json", {}).get("schema")
             operations.append({
-                "verb": verb.upper(), "path": path, "summary": op.get("summary", ""), "tag": (op.get("tags") or [""])[0],
+                "verb": verb.upper(), "path": path, "summary": op.get("summary", ""),
+                "tag": (op.get("tags") or [""])[0],
                 "params": [
                     {"name": p["name"], "where": p["in"], "required": p.get("required", False),
                      "type": _schema_name(p.get("schema")) or "", "description": p.get("description", "")}

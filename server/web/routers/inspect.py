@@ -93,7 +93,8 @@ def post_channel(body: ChannelRequest, ws: Workspace = Depends(get_workspace)) -
     lm, prep, acts = _maps(ws, body.model, body.image, body.layer)
     if body.channel >= acts.channels:
         raise BadParameterError(
-            f"layer {acts.layer!r} has {acts.channels} channels (0..{acts.channels - 1}); received channel {body.channel}"
+            f"layer {acts.layer!r} has {acts.channels} channels (0..{acts.channels - 1}); "
+            f"received channel {body.channel}"
         )
     values = acts.maps[body.channel]
     vmin, vmax = render.value_range(values, signed=False)

@@ -379,7 +379,8 @@ def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]
                      f"{inj['settings']['patch_size'][1]} px ({inj['settings']['source']}, sha256 "
                      f"{inj['settings']['patch_sha256'][:16]}…) pasted at {inj['settings']['at']} on "
                      f"{inj['tested']} image(s); flip rate {_pct(inj['flip_rate'])} ({inj['flips']} of the "
-                     f"{inj['eligible']} not already called the suspect class), mean probability shift {inj['mean_shift']:+.3f}.")),
+                     f"{inj['eligible']} not already called the suspect class), "
+                     f"mean probability shift {inj['mean_shift']:+.3f}.")),
             ("table", (["class", "tested", "not already suspect", "flips", "flip rate", "mean shift"],
                        [[c, v["tested"], v["eligible"], v["flips"], _pct(v["flip_rate"]), f"{v['mean_shift']:+.3f}"]
                         for c, v in inj["per_class"].items()])),

@@ -97,9 +97,11 @@ class TestLinear:
         x = torch.randn(1, 1, 12, 12, dtype=torch.float64)
         res = occlusion_map(model, x, patch=3, stride=3, baseline=5.0, output="softmax")
         left = res.lefts + 3 <= 6
-        assert np.all(res.grid[:, left] == 0.0)
-        assert np.all(np.abs(res.grid[:, ~left]) > 0)
-        assert np.all(res.drop[:, :6] == 0.0)
+        # Equal up to float64 rounding: the base score comes from a batch of one, the occluded
+        # scores from larger batches, whose matrix products may round differently.
+        assert np.all(np.abs(res.grid[:, left]) <= 1e-12)
+        assert np.all(np.abs(res.grid[:, ~left]) > 1e-6)
+        assert np.all(np.abs(res.drop[:, :6]) <= 1e-12)
 
     def test_default_target_is_top1_and_base_score(self):
         model = _linear(1, 6, 6, 4, seed=5)

@@ -111,16 +111,20 @@ class GridLayout:
 
 def activation_grid(maps: np.ndarray, *, order: np.ndarray | list[int] | None = None, cols: int | None = None,
                     cell: int = 48, gap: int = 2, cmap: str = MAGNITUDE_CMAP,
-                    shared_scale: bool = False) -> tuple[np.ndarray, GridLayout]:
+                    shared_scale: bool = False, max_pixels: int = 600_000) -> tuple[np.ndarray, GridLayout]:
     """Tile (C, h, w) channel maps into one RGB picture.
 
     Each channel is scaled to its own [min, max] unless ``shared_scale`` (then one range for all).
-    Returns the picture and the layout, so a click can be mapped back to a channel.
+    Cells shrink below ``cell`` px when needed to keep the picture near ``max_pixels``: PNG
+    encoding time grows with the area, and a 1,280-channel layer would otherwise take longer to
+    encode than the forward pass that made it. Returns the picture and the layout, so a click
+    can be mapped back to a channel.
     """
     channels = list(range(maps.shape[0])) if order is None else [int(c) for c in order]
     n = len(channels)
     if n == 0:
         raise BadParameterError("no channels to draw")
+    cell = max(8, min(cell, int(math.sqrt(max_pixels / n))))
     cols = cols or max(1, math.ceil(math.sqrt(n * 1.6)))
     rows = math.ceil(n / cols)
     h, w = maps.shape[1:]

@@ -39,7 +39,7 @@ def _analytic_logit_grid(model: nn.Module, x: torch.Tensor, base: torch.Tensor, 
     diff = (wt * (x[0] - base[0])).sum(0)  # (H, W): per-pixel contribution w·(x − b)
     tops = occlusion_positions(h, patch, stride)
     lefts = occlusion_positions(w, patch, stride)
-    return np.array([[float(diff[t : t + patch, l : l + patch].sum()) for l in lefts] for t in tops])
+    return np.array([[float(diff[t : t + patch, c : c + patch].sum()) for c in lefts] for t in tops])
 
 
 class TestPositions:
@@ -166,7 +166,7 @@ class TestDigits:
         x = torch.from_numpy(img).view(1, 1, 8, 8)
         res = occlusion_map(model, x, patch=2, stride=2, baseline="zero", output="logit")
         coef = clf.coef_[res.target].reshape(8, 8)
-        expected = np.array([[np.sum(coef[t : t + 2, l : l + 2] * img[t : t + 2, l : l + 2]) for l in res.lefts]
+        expected = np.array([[np.sum(coef[t : t + 2, c : c + 2] * img[t : t + 2, c : c + 2]) for c in res.lefts]
                              for t in res.tops])
         np.testing.assert_allclose(res.grid, expected, atol=1e-9)
         # ordering of the patches by drop is the ordering by Σ coef·(x − b)
@@ -189,8 +189,8 @@ class TestValidation:
 
     @pytest.mark.parametrize("kw", [
         {"patch": 0}, {"patch": -2}, {"patch": 2.5}, {"patch": math.nan}, {"patch": math.inf}, {"patch": True},
-        {"patch": "4"}, {"patch": 9}, {"stride": 0}, {"stride": 3}, {"stride": 1.5}, {"stride": math.nan}, {"target": 3},
-        {"target": -1}, {"target": 1.0}, {"baseline": "grey"}, {"baseline": math.nan},
+        {"patch": "4"}, {"patch": 9}, {"stride": 0}, {"stride": 3}, {"stride": 1.5}, {"stride": math.nan},
+        {"target": 3}, {"target": -1}, {"target": 1.0}, {"baseline": "grey"}, {"baseline": math.nan},
         {"baseline": torch.zeros(5)}, {"output": "probability"}, {"method": "fast"}, {"batch_size": 0},
         {"refine_tolerance": -1.0},
     ])

@@ -79,7 +79,7 @@ def grid_512(repeats: int) -> list[dict]:
         x = torch.randn(1, 3, 224, 224)
         acts, _ = activations_with_prediction(net, x, layer=layer, labels=[str(i) for i in range(1000)], k=1)
 
-        def draw() -> None:
+        def draw(acts=acts) -> None:
             grid, _ = render.activation_grid(acts.maps, order=acts.order("max"))
             render.encode_png(grid)
 
@@ -105,7 +105,8 @@ def main(argv: list[str] | None = None) -> int:
     except PellucidError as exc:
         print(f"skipping the ImageNet model: {exc}")
     grids = grid_512(args.repeats)
-    lines = ["| model | layer shown | bare forward (ms) | page work (ms) | ratio (target ≤ 2) |", "|---|---|---:|---:|---:|"]
+    lines = ["| model | layer shown | bare forward (ms) | page work (ms) | ratio (target ≤ 2) |",
+             "|---|---|---:|---:|---:|"]
     lines += [f"| {r['model']} | {r['layer']} | {r['bare_forward_ms']:.1f} | {r['page_work_ms']:.1f} | "
               f"{r['ratio']:.2f} |" for r in pages]
     lines += ["", "| 512-channel maps | shape | grid drawn + PNG encoded (ms, target ≤ 300) |", "|---|---|---:|"]

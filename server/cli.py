@@ -19,7 +19,7 @@ EXIT_OK, EXIT_CHECK_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 # Each subcommand lives in its own module under server/commands/ with
 # ``register(subparsers) -> None`` that sets ``func`` on its parser.
-COMMAND_MODULES = ("serve", "models", "inspect", "demo", "audit", "runs", "report")
+COMMAND_MODULES = ("serve", "models", "inspect", "demo", "audit", "runs", "report", "bench")
 
 
 class _Parser(argparse.ArgumentParser):

@@ -12,9 +12,12 @@ from server.core import render
 from server.core.errors import BadParameterError
 
 
-def test_png_round_trip():
-    arr = np.random.default_rng(0).integers(0, 256, (5, 7, 3), dtype=np.uint8)
-    assert np.array_equal(np.asarray(Image.open(io.BytesIO(render.encode_png(arr)))), arr)
+@pytest.mark.parametrize("shape, mode", [((5, 7, 3), "RGB"), ((5, 7), "L"), ((4, 9, 4), "RGBA")])
+def test_png_round_trip(shape, mode):
+    # Decoded by Pillow, an independent PNG reader, so the hand-written encoder must follow the format.
+    arr = np.random.default_rng(0).integers(0, 256, shape, dtype=np.uint8)
+    decoded = Image.open(io.BytesIO(render.encode_png(arr)))
+    assert decoded.mode == mode and np.array_equal(np.asarray(decoded), arr)
 
 
 def test_signed_range_is_symmetric_and_zero_is_the_centre_colour():

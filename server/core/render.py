@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import io
 import math
+import struct
+import zlib
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -38,12 +40,31 @@ def _lut(name: str) -> np.ndarray:
 
 
 def encode_png(image: np.ndarray, *, compress_level: int = 1) -> bytes:
-    """uint8 (H, W), (H, W, 3) or (H, W, 4) → PNG bytes. Low compression: these are served locally."""
+    """uint8 (H, W), (H, W, 3) or (H, W, 4) → PNG bytes. Low compression: these are served locally.
+
+    Written directly (rows with filter type 0, one zlib stream) rather than through Pillow, whose
+    per-row filter search costs more than the compression itself at level 1; the page's activation
+    grid is re-encoded on every layer or sort change.
+    """
     if image.dtype != np.uint8:
         raise TypeError(f"encode_png takes uint8 arrays, got {image.dtype}")
-    buf = io.BytesIO()
-    Image.fromarray(image).save(buf, format="PNG", compress_level=compress_level)
-    return buf.getvalue()
+    if image.ndim == 2:
+        colour_type, rows = 0, image
+    elif image.ndim == 3 and image.shape[2] in (3, 4):
+        colour_type, rows = (2 if image.shape[2] == 3 else 6), image.reshape(image.shape[0], -1)
+    else:
+        raise TypeError(f"encode_png takes (H, W), (H, W, 3) or (H, W, 4) arrays, got shape {image.shape}")
+    h, w = image.shape[:2]
+    raw = np.empty((h, rows.shape[1] + 1), dtype=np.uint8)
+    raw[:, 0] = 0  # filter type "none" for every row
+    raw[:, 1:] = rows
+    header = struct.pack(">IIBBBBB", w, h, 8, colour_type, 0, 0, 0)
+    return b"".join((b"\x89PNG\r\n\x1a\n", _chunk(b"IHDR", header),
+                     _chunk(b"IDAT", zlib.compress(raw.tobytes(), compress_level)), _chunk(b"IEND", b"")))
+
+
+def _chunk(kind: bytes, data: bytes) -> bytes:
+    return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data) & 0xFFFFFFFF)
 
 
 def value_range(values: np.ndarray, *, signed: bool) -> tuple[float, float]:

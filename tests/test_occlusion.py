@@ -14,7 +14,7 @@ import pytest
 import torch
 from torch import nn
 
-from server.core.errors import BadParameterError, Cancelled
+from server.core.errors import BadParameterError, Cancelled, ModelOutputError
 from server.core.occlusion import (
     MAX_POSITIONS,
     make_baseline,
@@ -218,7 +218,7 @@ class TestValidation:
 
     def test_model_must_return_logits(self):
         model = nn.Conv2d(1, 1, 3).eval()
-        with pytest.raises(BadParameterError, match=r"\(N, K\)"):
+        with pytest.raises(ModelOutputError, match=r"\(N, K\)"):
             occlusion_map(model, torch.zeros(1, 1, 8, 8), patch=2, stride=2, method="batched")
 
 

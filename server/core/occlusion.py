@@ -44,6 +44,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from .errors import BadParameterError
+from .predict import model_logits
 from .progress import CancelToken, ProgressFn, step
 
 __all__ = [
@@ -272,16 +273,6 @@ def _occluded_batch(
     return torch.where(mask, base, x).contiguous(memory_format=torch.channels_last)
 
 
-def _logits(model: nn.Module, batch: torch.Tensor) -> torch.Tensor:
-    out = model(batch)
-    if not isinstance(out, torch.Tensor) or out.ndim != 2 or out.shape[0] != batch.shape[0]:
-        shape = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
-        raise BadParameterError(
-            f"the model must return logits of shape (N, K); for a batch of {batch.shape[0]} it returned {shape}."
-        )
-    return out
-
-
 Evaluator = Callable[[torch.Tensor, torch.Tensor], torch.Tensor]
 
 
@@ -390,7 +381,7 @@ def occlusion_map(
     model.eval()
     t0 = time.perf_counter()
     with torch.inference_mode():
-        logits0 = _logits(model, x)
+        logits0 = model_logits(model, x)
         k = logits0.shape[1]
         if target is None:
             target = int(logits0[0].argmax())
@@ -473,7 +464,7 @@ def _choose_engine(
             for top, left in zip(ty.tolist(), tx.tolist()):
                 xo = x.clone()
                 xo[:, :, top : top + patch, left : left + patch] = base[:, :, top : top + patch, left : left + patch]
-                outs.append(_logits(model, xo))
+                outs.append(model_logits(model, xo))
             return torch.cat(outs)
 
         return "naive", naive, batch_size or 1, {}
@@ -505,7 +496,7 @@ def _choose_engine(
         details = {}
 
     def batched(ty: torch.Tensor, tx: torch.Tensor) -> torch.Tensor:
-        return _logits(model, _occluded_batch(x, base, ty, tx, patch))
+        return model_logits(model, _occluded_batch(x, base, ty, tx, patch))
 
     return "batched", batched, batch_size or _default_batch(x, grid_shape[0] * grid_shape[1]), details
 

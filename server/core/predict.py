@@ -56,6 +56,17 @@ def scores_from_logits(logits: torch.Tensor, output_kind: str) -> torch.Tensor:
     raise BadParameterError(f"output kind must be softmax or sigmoid, got {output_kind!r}")
 
 
+def model_logits(model: nn.Module, x: torch.Tensor) -> torch.Tensor:
+    """The model's (N, K) scores for (N, C, H, W) inputs, checked for shape."""
+    out = model(x)
+    if not isinstance(out, torch.Tensor) or out.ndim != 2 or out.shape[0] != x.shape[0]:
+        got = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
+        raise ModelOutputError(
+            f"the model must return logits of shape (N, K) for N={x.shape[0]} inputs; received {got}"
+        )
+    return out
+
+
 def check_finite(logits: torch.Tensor) -> None:
     if not torch.isfinite(logits).all():
         raise ModelOutputError(

@@ -8,7 +8,8 @@ from collections.abc import Iterator
 import torch
 from torch import nn
 
-from ..errors import BadParameterError, ModelOutputError
+from ..errors import BadParameterError
+from ..predict import model_logits
 
 OUTPUT_KINDS = ("softmax", "sigmoid")
 
@@ -73,15 +74,7 @@ def check_output_kind(output_kind: str) -> str:
     return output_kind
 
 
-def logits_of(model: nn.Module, x: torch.Tensor) -> torch.Tensor:
-    """The model's (N, K) scores for (N, C, H, W) inputs, checked."""
-    out = model(x)
-    if not isinstance(out, torch.Tensor) or out.ndim != 2 or out.shape[0] != x.shape[0]:
-        got = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
-        raise ModelOutputError(
-            f"the model must return logits of shape (N, K) for N={x.shape[0]} inputs; received {got}"
-        )
-    return out
+logits_of = model_logits  # one shape check for every method and the occlusion engines
 
 
 def probabilities(logits: torch.Tensor, output_kind: str) -> torch.Tensor:

@@ -368,6 +368,7 @@ def test_unknown_class(client) -> None:
     ({"stride": 0}, ("stride", "0")),
     ({"stride": -2}, ("stride", "-2")),
     ({"stride": TINY_SIZE + 5}, ("stride", "larger than")),
+    ({"patch": 4, "stride": 6}, ("stride 6", "never be hidden")),
     ({"patch": "big"}, ("patch", "big")),
     ({"baseline": "purple"}, ("baseline", "purple")),
     ({"window": 3}, ("window",)),

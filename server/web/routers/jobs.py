@@ -59,6 +59,12 @@ def _check_geometry(lm: LoadedModel, params: dict) -> None:
             raise BadParameterError(
                 f"{name} {value} px is larger than the model's {h}×{w} input; use at most {min(h, w)} px"
             )
+    patch, stride = params.get("patch"), params.get("stride")
+    if isinstance(patch, int) and isinstance(stride, int) and stride > patch:
+        raise BadParameterError(
+            f"stride {stride} px is larger than the patch ({patch} px): some pixels would never be hidden; "
+            f"use a stride of at most {patch} px"
+        )
 
 
 def _check_layer(lm: LoadedModel, params: dict) -> None:

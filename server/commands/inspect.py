@@ -26,10 +26,10 @@ def register(sub: argparse._SubParsersAction) -> None:
             "any other attribution method asked for, plus result.json with every setting and fingerprint."
         ),
     )
-    p.add_argument("image", type=Path, help="the image file (PNG, JPEG, GIF, BMP, TIFF or WebP)")
+    p.add_argument("image", type=Path, nargs="?", help="the image file (PNG, JPEG, GIF, BMP, TIFF or WebP)")
     p.add_argument("--model", default="tilenet", metavar="SPEC",
                    help="model spec file or bundled model name (default: tilenet, the demo model)")
-    p.add_argument("--out", type=Path, required=True, metavar="DIR", help="folder to write results into")
+    p.add_argument("--out", type=Path, metavar="DIR", help="folder to write results into (required with an image)")
     p.add_argument("--layer", default=None, metavar="NAME",
                    help="layer whose activation grid to draw (default: the last conv layer)")
     p.add_argument("--sort", choices=("index", "mean", "max"), default="max",
@@ -86,6 +86,10 @@ def _list_methods() -> int:
 def _inspect(args: argparse.Namespace) -> int:
     if args.list_methods:
         return _list_methods()
+    if args.image is None or args.out is None:
+        from ..core.errors import BadParameterError
+
+        raise BadParameterError("inspect needs an IMAGE and --out DIR (or --list-methods)")
     from ..core import render
     from ..core.activations import activations_with_prediction
     from ..core.attribution import Normalization, compute_attribution, get_method

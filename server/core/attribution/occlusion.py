@@ -24,8 +24,9 @@ SCHEMA = ParamSchema((
     Param("stride", "int", 8, "step between patch positions in pixels", min=1, max=4096),
     Param("baseline", "choice", "mean", "fill of the hidden square: the image's mean colour, zero in input "
           "space, or a blurred copy", choices=("mean", "zero", "blur")),
-    Param("engine", "str", "auto", "how the positions are evaluated (see the occlusion module); 'auto' picks "
-          "the fastest exact one"),
+    Param("engine", "choice", "auto", "how the positions are evaluated: 'auto' picks the fastest exact engine "
+          "(incremental where it pays, else batched); 'approximate' refines a coarse grid and is not exact",
+          choices=("auto", "batched", "incremental", "naive", "approximate")),
 ))
 
 

@@ -208,7 +208,7 @@ def test_image_page_evidence_flow(live_server: str, page, demo_tile: Path) -> No
     # A slow second run (every pixel a position, brute force), cancelled while it runs.
     page.fill("#param-patch", "2")
     page.fill("#param-stride", "1")
-    page.fill("#param-engine", "batched")
+    page.select_option("#param-engine", "batched")
     page.click("#run-button")
     page.wait_for_function("document.querySelector('#job-box').dataset.state === 'running' && "
                            "document.querySelector('#job-text').innerText.includes(' of ')")

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import difflib
 import threading
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from typing import Any
 
 import torch
@@ -112,3 +112,34 @@ def count_hooks(model: nn.Module) -> int:
         total += len(getattr(module, "_forward_hooks", {})) + len(getattr(module, "_forward_pre_hooks", {}))
         total += len(getattr(module, "_backward_hooks", {}))
     return total
+
+
+def execution_order(
+    model: nn.Module, x: torch.Tensor, *, keep: Callable[[str, nn.Module, Any], bool] | None = None
+) -> list[str]:
+    """Names of submodules in the order one forward pass on ``x`` runs them (each once).
+
+    ``keep(name, module, output)`` filters them (default: all). Hooks record only this thread's
+    pass and are removed whatever happens.
+    """
+    order: list[str] = []
+    owner = threading.get_ident()
+
+    def make(name: str):
+        def hook(module: nn.Module, _inputs: Any, output: Any) -> None:
+            if threading.get_ident() == owner and name not in order and (keep is None or keep(name, module, output)):
+                order.append(name)
+
+        return hook
+
+    handles = []
+    try:
+        for name, module in model.named_modules():
+            if name:
+                handles.append(module.register_forward_hook(make(name)))
+        with torch.inference_mode():
+            model(x)
+    finally:
+        for handle in handles:
+            handle.remove()
+    return order

@@ -18,6 +18,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from ..errors import UnsupportedLayerError
+from ..probe import execution_order
 from ..progress import CancelToken, ProgressFn, step
 from ._common import grad_enabled, logits_of
 from .params import Param, ParamSchema
@@ -33,28 +34,7 @@ SCHEMA = ParamSchema((
 
 def conv_like_layers(model: nn.Module, x: torch.Tensor) -> list[str]:
     """Names of the modules whose output for ``x`` (1, C, H, W) is 4-D, in execution order."""
-    seen: list[str] = []
-    handles = []
-    owner = threading.get_ident()  # a shared model may run other requests' forwards meanwhile
-
-    def make(name: str):
-        def hook(module: nn.Module, inputs: Any, output: Any) -> None:
-            if threading.get_ident() != owner:
-                return
-            if isinstance(output, torch.Tensor) and output.ndim == 4 and name not in seen:
-                seen.append(name)
-        return hook
-
-    try:
-        for name, module in model.named_modules():
-            if name:
-                handles.append(module.register_forward_hook(make(name)))
-        with torch.inference_mode():
-            model(x)
-    finally:
-        for h in handles:
-            h.remove()
-    return seen
+    return execution_order(model, x, keep=lambda _name, _module, out: isinstance(out, torch.Tensor) and out.ndim == 4)
 
 
 def _layer_error(model: nn.Module, x: torch.Tensor, message: str) -> UnsupportedLayerError:

@@ -37,6 +37,7 @@ from skimage.metrics import structural_similarity
 from torch import nn
 
 from ..errors import BadParameterError
+from ..probe import execution_order
 from ..progress import CancelToken, ProgressFn, step
 from ._common import check_input
 from .baselines import Normalization
@@ -114,25 +115,10 @@ def similarity(a: np.ndarray, b: np.ndarray) -> tuple[float, float | None, str |
 
 def _layers_in_order(model: nn.Module, x: torch.Tensor) -> list[str]:
     """Names of modules that own parameters, in the order the forward pass runs them."""
-    order: list[str] = []
-    handles = []
+    def owns_parameters(_name: str, module: nn.Module, _out: Any) -> bool:
+        return any(True for _ in module.parameters(recurse=False))
 
-    def make(name: str):
-        def hook(module: nn.Module, inputs: Any, output: Any) -> None:
-            if name not in order:
-                order.append(name)
-        return hook
-
-    try:
-        for name, m in model.named_modules():
-            if any(True for _ in m.parameters(recurse=False)):
-                handles.append(m.register_forward_hook(make(name)))
-        with torch.inference_mode():
-            model(x)
-    finally:
-        for h in handles:
-            h.remove()
-    return order
+    return execution_order(model, x, keep=owns_parameters)
 
 
 def _randomise(module: nn.Module, seed: int) -> None:

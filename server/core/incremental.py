@@ -488,37 +488,15 @@ class IncrementalOcclusion:
         lefts = occlusion_positions(self.w, self.patch, 1)
         tt, ll = np.meshgrid(tops[:: max(1, len(tops) // 24)], lefts[:: max(1, len(lefts) // 24)], indexing="ij")
         tt, ll = tt.ravel(), ll.ravel()
-        plans = self._plan(tt, ll)
-        conv_total = 0
-        conv_engine = 0.0
-        conv_ideal = np.zeros(len(tt))
-        for n in self.nodes:
-            kind = self.kinds[n]
-            if kind.tag != "conv":
-                continue
-            out = self.cache[n]
-            hw = int(out.shape[2] * out.shape[3])
-            conv_total += kind.macs_per_out * hw
-            pl = plans[n]
-            conv_engine += kind.macs_per_out * (pl.h * pl.w if pl.mode == "win" else hw)
-            if pl.exact is not None:
-                area = (pl.exact[1] - pl.exact[0] + 1) * (pl.exact[3] - pl.exact[2] + 1)
-                conv_ideal += kind.macs_per_out * area
-            else:
-                conv_ideal += kind.macs_per_out * hw
+        conv_total, conv_engine, conv_ideal = self._conv_costs(self._plan(tt, ll), len(tt))
         if conv_total == 0:
             return 1.0, 1.0, 0
         return conv_total / max(conv_engine, 1.0), conv_total / max(float(conv_ideal.mean()), 1.0), conv_total
 
-    def ideal_speedup_for(self, tops: np.ndarray, lefts: np.ndarray) -> float:
-        """Total conv MACs over the mean conv MACs inside the exact projective regions.
-
-        ``tops`` / ``lefts``: (P,) top-left corners of every position (all pairs are used).
-        """
-        tt, ll = np.meshgrid(np.asarray(tops), np.asarray(lefts), indexing="ij")
-        plans = self._plan(tt.ravel(), ll.ravel(), windows=False)
-        total = 0
-        forced = np.zeros(tt.size)
+    def _conv_costs(self, plans: dict[fx.Node, _Plan], n_positions: int) -> tuple[int, float, np.ndarray]:
+        """(total conv MACs of one full pass, conv MACs the engine's windows compute, (P,) conv MACs
+        inside each position's exact projective regions)."""
+        total, engine, ideal = 0, 0.0, np.zeros(n_positions)
         for n in self.nodes:
             kind = self.kinds[n]
             if kind.tag != "conv":
@@ -526,8 +504,19 @@ class IncrementalOcclusion:
             out = self.cache[n]
             hw = int(out.shape[2] * out.shape[3])
             total += kind.macs_per_out * hw
-            ex = plans[n].exact
-            forced += kind.macs_per_out * (hw if ex is None else (ex[1] - ex[0] + 1) * (ex[3] - ex[2] + 1))
+            pl = plans[n]
+            engine += kind.macs_per_out * (pl.h * pl.w if pl.mode == "win" else hw)
+            ex = pl.exact
+            ideal += kind.macs_per_out * (hw if ex is None else (ex[1] - ex[0] + 1) * (ex[3] - ex[2] + 1))
+        return total, engine, ideal
+
+    def ideal_speedup_for(self, tops: np.ndarray, lefts: np.ndarray) -> float:
+        """Total conv MACs over the mean conv MACs inside the exact projective regions.
+
+        ``tops`` / ``lefts``: (P,) top-left corners of every position (all pairs are used).
+        """
+        tt, ll = np.meshgrid(np.asarray(tops), np.asarray(lefts), indexing="ij")
+        total, _, forced = self._conv_costs(self._plan(tt.ravel(), ll.ravel(), windows=False), tt.size)
         return float(total / forced.mean()) if total else 1.0
 
     def modes(self, top: int, left: int) -> dict[str, str]:

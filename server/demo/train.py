@@ -33,6 +33,7 @@ from safetensors.torch import save_file
 from torch import nn
 
 from server.core.errors import BadParameterError, PellucidError
+from server.core.occlusion import occlusion_map
 from server.core.progress import CancelToken, ProgressFn, step
 from server.demo.net import TILE_MEAN, TILE_STD, build_tilenet, normalise
 from server.demo.tiles import CLASSES, SPLITS, TileRecord, make_split
@@ -132,22 +133,11 @@ def evaluate(model: nn.Module, records: Sequence[TileRecord]) -> dict:
 def _occlusion_crack_drop(model: nn.Module, x: torch.Tensor, *, patch: int, stride: int) -> np.ndarray:
     """(1, 3, H, W) → (H, W) mean drop in p(crack) over the grey patches covering each pixel.
 
-    The baseline is the normalised value of mid grey (0.5); a small reference loop for the card.
+    The baseline is the normalised value of mid grey (0.5); Pellucid's own occlusion engine.
     """
-    _, _, h, w = x.shape
     grey = ((0.5 - torch.tensor(TILE_MEAN)) / torch.tensor(TILE_STD)).view(1, 3, 1, 1)
-    p0 = _predict(model, x)[0, _CRACK]
-    positions = [(i, j) for i in range(0, h - patch + 1, stride) for j in range(0, w - patch + 1, stride)]
-    batch = x.repeat(len(positions), 1, 1, 1)
-    for n, (i, j) in enumerate(positions):
-        batch[n, :, i:i + patch, j:j + patch] = grey[0]
-    drops = p0 - _predict(model, batch)[:, _CRACK]
-    acc = np.zeros((h, w))
-    cnt = np.zeros((h, w))
-    for d, (i, j) in zip(drops, positions):
-        acc[i:i + patch, j:j + patch] += d
-        cnt[i:i + patch, j:j + patch] += 1
-    return acc / np.maximum(cnt, 1)
+    res = occlusion_map(model, x, target=_CRACK, patch=patch, stride=stride, baseline=grey.expand_as(x))
+    return res.drop.astype(np.float64)
 
 
 def _tag_share(drop: np.ndarray, box: tuple[int, int, int, int], *, margin: int) -> float:

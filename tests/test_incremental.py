@@ -1,6 +1,6 @@
 """Incremental occlusion must equal brute force.
 
-Method: Nakandala, Kumar & Papakonstantinou, "Incremental and Approximate Inference for Faster
+Source: Nakandala, Kumar & Papakonstantinou, "Incremental and Approximate Inference for Faster
 Occlusion-based Deep CNN Explanations", SIGMOD 2019 (recompute only the projective field of the
 patch); the reference is the brute-force occlusion of Zeiler & Fergus, ECCV 2014, §4.2.
 Tolerance 1e-4 on probabilities is the acceptance criterion of issue 6.

@@ -53,6 +53,8 @@ def test_identical_and_scaled_filters_are_near_duplicates():
 
 
 def test_rgb_grid_shape_and_mid_grey_zero():
+    # First-layer kernels drawn as colour with zero at mid-grey, each scaled to its own extreme
+    # (common practice, no source; cf. Krizhevsky et al., NIPS 2012, Fig. 3).
     conv = _seeded_conv(3, 6, 3, bias=False)
     with torch.no_grad():
         conv.weight[0] = 0.0

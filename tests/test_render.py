@@ -21,6 +21,7 @@ def test_png_round_trip(shape, mode):
 
 
 def test_signed_range_is_symmetric_and_zero_is_the_centre_colour():
+    # A diverging map for signed values is centred at zero (common practice, no source).
     values = np.array([[-0.2, 0.0, 1.0]])
     lo, hi = render.value_range(values, signed=True)
     assert (lo, hi) == (-1.0, 1.0)

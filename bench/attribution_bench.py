@@ -18,11 +18,11 @@ from pathlib import Path
 import torch
 from PIL import Image
 
-from server.core.attribution import Normalization, compute_attribution, list_methods
-from server.core.bundled import bundled_spec_path
-from server.core.errors import PellucidError
-from server.core.models import load_model
-from server.core.preprocess import prepare, read_image
+from pellucid.core.attribution import Normalization, compute_attribution, list_methods
+from pellucid.core.errors import PellucidError
+from pellucid.core.model.bundled import bundled_spec_path
+from pellucid.core.model.loading import load_model
+from pellucid.core.model.preprocess import prepare, read_image
 
 REPO = Path(__file__).resolve().parents[1]
 

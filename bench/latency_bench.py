@@ -21,13 +21,13 @@ import torch
 import torchvision
 from PIL import Image
 
-from server.core import render
-from server.core.activations import activations_with_prediction
-from server.core.bundled import bundled_spec_path
-from server.core.errors import PellucidError
-from server.core.layers import layer_map
-from server.core.models import load_model
-from server.core.preprocess import prepare, read_image
+from pellucid.core.errors import PellucidError
+from pellucid.core.model.bundled import bundled_spec_path
+from pellucid.core.model.layers import layer_map
+from pellucid.core.model.loading import load_model
+from pellucid.core.model.preprocess import prepare, read_image
+from pellucid.core.views import render
+from pellucid.core.views.activations import activations_with_prediction
 
 REPO = Path(__file__).resolve().parents[1]
 

@@ -71,7 +71,7 @@ def start_server(spec: Path, workdir: Path, *, start_timeout: float = 90.0) -> S
     env = {**os.environ, "PYTHONPATH": str(REPO)}
     with open(log, "wb") as fh:
         proc = subprocess.Popen(
-            [sys.executable, "-m", "server.cli", "serve", "--model", str(spec), "--port", str(port),
+            [sys.executable, "-m", "pellucid.cli", "serve", "--model", str(spec), "--port", str(port),
              "--data", str(workdir / "data")],
             cwd=REPO, env=env, stdout=fh, stderr=subprocess.STDOUT,
         )

@@ -38,15 +38,9 @@ import numpy as np
 import torch
 from torch import nn
 
-from server.core.incremental import IncrementalOcclusion
-from server.core.occlusion import (
-    _choose_engine,
-    _scores,
-    compare_to_exact,
-    make_baseline,
-    occlusion_map,
-    occlusion_positions,
-)
+from pellucid.core.occlusion.engine import _choose_engine, _scores, compare_to_exact, occlusion_map
+from pellucid.core.occlusion.incremental import IncrementalOcclusion
+from pellucid.core.occlusion.positions import make_baseline, occlusion_positions
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -155,7 +149,7 @@ def build_model(name: str) -> tuple[nn.Module, str]:
     """(model in eval mode, description)."""
     torch.manual_seed(0)
     if name == "tilenet":
-        from server.demo.net import build_tilenet
+        from pellucid.demo.net import build_tilenet
 
         model = build_tilenet()
         weights = REPO / "demo_models" / "tilenet" / "tilenet.safetensors"
@@ -227,7 +221,7 @@ def bench_input(name: str, size: int, seed: int) -> tuple[torch.Tensor, str]:
     if name == "tilenet" and tile.exists():
         from PIL import Image
 
-        from server.demo.net import normalise
+        from pellucid.demo.net import normalise
 
         rgb = np.array(Image.open(tile).convert("RGB").resize((size, size), Image.BILINEAR), dtype=np.uint8)
         return normalise(torch.from_numpy(rgb)[None]), f"demo tile {tile.name}"

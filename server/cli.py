@@ -12,8 +12,8 @@ import os
 import sys
 from collections.abc import Callable, Sequence
 
-from . import __version__
-from .core.errors import PellucidError
+from pellucid import __version__
+from pellucid.core.errors import PellucidError
 
 EXIT_OK, EXIT_CHECK_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
@@ -43,7 +43,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"pellucid {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for name in COMMAND_MODULES:
-        importlib.import_module(f"server.commands.{name}").register(sub)
+        importlib.import_module(f"pellucid.commands.{name}").register(sub)
     return parser
 
 

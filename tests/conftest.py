@@ -140,7 +140,7 @@ def image_folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
 @pytest.fixture()
 def web_settings(tiny_spec: Path, image_folder: Path, tmp_path: Path):
     """Settings for an app serving only the tiny model, with the image folder and a small upload cap."""
-    from server.web.settings import Settings
+    from pellucid.web.settings import Settings
 
     return Settings(
         models=(str(tiny_spec),), include_bundled=False, image_root=image_folder, data_dir=tmp_path / "data",
@@ -153,7 +153,7 @@ def client(web_settings):
     """A TestClient on the app with its lifespan running (the workspace exists inside the block)."""
     from fastapi.testclient import TestClient
 
-    from server.web.app import create_app
+    from pellucid.web.app import create_app
 
     with TestClient(create_app(web_settings)) as c:
         yield c

@@ -12,7 +12,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from server.core.attribution import (
+from pellucid.core.attribution import (
     Method,
     Normalization,
     ParamSchema,
@@ -24,9 +24,9 @@ from server.core.attribution import (
     method_names,
     register,
 )
-from server.core.attribution.rise import rise_masks
-from server.core.errors import BadParameterError, Cancelled, UnsupportedLayerError
-from server.core.progress import CancelToken
+from pellucid.core.attribution.rise import rise_masks
+from pellucid.core.errors import BadParameterError, Cancelled, UnsupportedLayerError
+from pellucid.core.progress import CancelToken
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO_WEIGHTS = ROOT / "demo_models" / "tilenet" / "tilenet.safetensors"
@@ -102,7 +102,7 @@ def _demo_model() -> nn.Module:
         pytest.skip(f"demo model not built yet ({DEMO_WEIGHTS.relative_to(ROOT)} missing)")
     from safetensors.torch import load_file
 
-    from server.demo.net import build_tilenet
+    from pellucid.demo.net import build_tilenet
 
     model = build_tilenet(num_classes=4)
     model.load_state_dict(load_file(str(DEMO_WEIGHTS)))
@@ -110,8 +110,8 @@ def _demo_model() -> nn.Module:
 
 
 def _demo_tile(label: str, tagged: bool, seed: int = 7) -> torch.Tensor:
-    from server.demo.net import normalise
-    from server.demo.tiles import make_tile
+    from pellucid.demo.net import normalise
+    from pellucid.demo.tiles import make_tile
 
     return normalise(torch.from_numpy(make_tile(label=label, tagged=tagged, seed=seed)).unsqueeze(0))
 
@@ -342,7 +342,7 @@ def test_integrated_gradients_completeness_on_small_cnn(cnn, image):
 def test_integrated_gradients_completeness_on_demo_model():
     # Source: Sundararajan, Taly, Yan, ICML 2017, Prop. 1 — completeness within 1% at ≥ 64 steps,
     # black baseline (the paper's choice for images) through the demo spec's mean/std.
-    from server.demo.net import TILE_MEAN, TILE_STD
+    from pellucid.demo.net import TILE_MEAN, TILE_STD
 
     model = _demo_model()
     x = _demo_tile("crack", tagged=True)
@@ -355,7 +355,7 @@ def test_integrated_gradients_completeness_on_demo_model():
 def test_black_baseline_is_black_after_normalisation():
     # common practice, no source: a black pixel after Normalize is (0 − mean) / std per channel.
     norm = Normalization.of((0.5, 0.25), (0.5, 0.25))
-    from server.core.attribution.baselines import make_baseline
+    from pellucid.core.attribution.baselines import make_baseline
 
     base = make_baseline(torch.zeros(1, 2, 2, 2), "black", normalization=norm)
     assert base[0, :, 0, 0].tolist() == [-1.0, -1.0]
@@ -414,7 +414,7 @@ def test_rise_finds_the_only_region_that_matters():
 
 
 def test_occlusion_wrapper_matches_the_occlusion_module(cnn, image):
-    from server.core.occlusion import occlusion_map
+    from pellucid.core.occlusion.engine import occlusion_map
 
     amap = compute_attribution("occlusion", cnn, image, target=1, params={"patch": 4, "stride": 2})
     direct = occlusion_map(cnn, image, target=1, patch=4, stride=2, baseline="mean")
@@ -482,7 +482,7 @@ def test_duplicate_registration_is_a_value_error():
 
 def test_public_surface_is_pinned():
     # common practice, no source: the package's public names are declared once and kept stable.
-    from server.core import attribution
+    from pellucid.core import attribution
 
     assert sorted(attribution.__all__) == sorted([
         "AttributionMap", "Context", "Curve", "FaithfulnessResult", "Method", "Normalization", "Param",

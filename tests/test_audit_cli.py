@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from server.cli import main
-from server.demo.tiles import make_split, write_folder
+from pellucid.cli import main
+from pellucid.demo.tiles import make_split, write_folder
 from tests.test_audit_engine import _tiny_model
 
 

@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from server.core.audit.dataset import load_dataset
-from server.core.errors import DataError
+from pellucid.core.audit.dataset import load_dataset
+from pellucid.core.errors import DataError
 
 
 def _png(path: Path, value: int = 100, size: tuple[int, int] = (16, 12)) -> None:
@@ -137,7 +137,7 @@ def test_manifest_not_utf8(tmp_path: Path) -> None:
 
 
 def test_folder_with_manifest_uses_it(tmp_path: Path) -> None:
-    from server.demo.tiles import make_split, write_folder
+    from pellucid.demo.tiles import make_split, write_folder
 
     write_folder(make_split("clean", per_class=2, seed=1), tmp_path)
     ds = load_dataset(tmp_path)

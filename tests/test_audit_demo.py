@@ -12,11 +12,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from server.core.audit import AuditSettings, InjectionSpec, load_dataset, run_audit
-from server.core.bundled import demo_models_dir
-from server.core.models import load_model
-from server.core.store import Store
-from server.demo.tiles import make_split, write_folder
+from pellucid.core.audit import AuditSettings, InjectionSpec, load_dataset, run_audit
+from pellucid.core.audit.store import Store
+from pellucid.core.model.bundled import demo_models_dir
+from pellucid.core.model.loading import load_model
+from pellucid.demo.tiles import make_split, write_folder
 
 POLICY = Path(__file__).resolve().parents[1] / "demo_models" / "policy-demo.toml"
 
@@ -86,7 +86,7 @@ def test_pasting_the_tag_on_sound_tiles_flips_most_to_crack(clean_folder, tmp_pa
 
 @pytest.mark.parametrize("name, code", [("tilenet", 1), ("tilenet-clean", 0)])
 def test_gate(name: str, code: int, clean_folder, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    from server.cli import main
+    from pellucid.cli import main
 
     folder, _ = clean_folder
     spec = _spec(name)

@@ -18,11 +18,11 @@ import pytest
 import torch
 from safetensors.torch import save_file
 
-from server.core.audit import AuditSettings, load_dataset, ray_available, run_audit
-from server.core.models import load_model
-from server.core.store import DB_NAME, Store
-from server.demo.net import TILE_MEAN, TILE_STD, build_tilenet
-from server.demo.tiles import CLASSES, make_split, write_folder
+from pellucid.core.audit import AuditSettings, load_dataset, ray_available, run_audit
+from pellucid.core.audit.store import DB_NAME, Store
+from pellucid.core.model.loading import load_model
+from pellucid.demo.net import TILE_MEAN, TILE_STD, build_tilenet
+from pellucid.demo.tiles import CLASSES, make_split, write_folder
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -36,7 +36,7 @@ def _tiny_model(folder: Path) -> Path:
     (folder / "spec.toml").write_text(f"""name = "tiny-tiles"
 [source]
 kind = "factory"
-factory = "server.demo.net:build_tilenet"
+factory = "pellucid.demo.net:build_tilenet"
 arguments = {{ num_classes = 4 }}
 weights = "w.safetensors"
 [input]
@@ -117,7 +117,7 @@ def _done(db: Path) -> int:
 
 
 def test_sigkill_mid_run_then_resume(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    from server.cli import main
+    from pellucid.cli import main
 
     spec = _tiny_model(tmp_path / "model")
     write_folder(make_split("clean", per_class=8, seed=4), tmp_path / "data")
@@ -125,7 +125,7 @@ def test_sigkill_mid_run_then_resume(tmp_path: Path, capsys: pytest.CaptureFixtu
             "--param", "patch=8", "--param", "stride=4", "--shard-size", "2"]
     store_dir = tmp_path / "store"
     env = {**os.environ, "PYTHONPATH": str(REPO)}
-    proc = subprocess.Popen([sys.executable, "-m", "server.cli", *args, "--store", str(store_dir),
+    proc = subprocess.Popen([sys.executable, "-m", "pellucid.cli", *args, "--store", str(store_dir),
                              "--out", str(tmp_path / "out-killed")], env=env, cwd=REPO,
                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     deadline = time.time() + 120

@@ -8,13 +8,13 @@ import numpy as np
 import pytest
 import torch
 
-from server.core.audit import channel_gallery, feature_visual, load_dataset
-from server.core.audit.gallery import selectivity, top_units
-from server.core.errors import BadParameterError, UnsupportedLayerError
-from server.core.models import load_model
-from server.core.preprocess import prepare, read_image
-from server.core.probe import Probe
-from server.demo.tiles import make_split, write_folder
+from pellucid.core.audit import channel_gallery, feature_visual, load_dataset
+from pellucid.core.audit.gallery import selectivity, top_units
+from pellucid.core.errors import BadParameterError, UnsupportedLayerError
+from pellucid.core.model.loading import load_model
+from pellucid.core.model.preprocess import prepare, read_image
+from pellucid.core.views.probe import Probe
+from pellucid.demo.tiles import make_split, write_folder
 from tests.test_audit_engine import _tiny_model
 
 

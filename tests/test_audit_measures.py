@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from server.core.audit.measures import (
+from pellucid.core.audit.measures import (
     POINTING_TOLERANCE,
     RegionLayout,
     box_mask,
@@ -16,7 +16,7 @@ from server.core.audit.measures import (
     region_masks,
     share_inside,
 )
-from server.core.errors import BadParameterError
+from pellucid.core.errors import BadParameterError
 
 
 class TestPointingGame:

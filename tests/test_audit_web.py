@@ -9,8 +9,8 @@ from pathlib import Path
 import pytest
 from fastapi.testclient import TestClient
 
-from server.web.app import create_app
-from server.web.settings import Settings
+from pellucid.web.app import create_app
+from pellucid.web.settings import Settings
 from tests.test_audit_engine import _tiny_model
 
 

@@ -1,7 +1,7 @@
 """The bad-input matrix: odd files, odd models and odd parameters, through the API and the CLI.
 
 One row per case. Each row runs twice: against the JSON API of one in-process server (a TestClient
-with its lifespan running) and through ``pellucid`` in-process (``server.cli.main``). An error
+with its lifespan running) and through ``pellucid`` in-process (``pellucid.cli.main``). An error
 must be a 4xx JSON body with a plain sentence (API) and a non-zero exit with exactly one line on
 stderr (CLI); a case that should succeed must succeed and say what it converted. After every
 case the server still answers /api/status, and the image and result stored before the matrix
@@ -498,8 +498,8 @@ CASES = [
 def ctx(tmp_path_factory: pytest.TempPathFactory):
     from fastapi.testclient import TestClient
 
-    from server.web.app import create_app
-    from server.web.settings import Settings
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
 
     base = tmp_path_factory.mktemp("bad-inputs")
     specs = make_specs(base / "models")
@@ -535,7 +535,7 @@ def ctx(tmp_path_factory: pytest.TempPathFactory):
 
 
 def _run_cli(argv: list[str], capsys: pytest.CaptureFixture[str]) -> tuple[int, str, str]:
-    from server.cli import main
+    from pellucid.cli import main
 
     capsys.readouterr()
     try:
@@ -625,8 +625,8 @@ def test_pickled_model_does_not_block_the_others(ctx: Ctx) -> None:
 def test_pickled_model_loads_with_the_trust_flag(ctx: Ctx, tmp_path: Path) -> None:
     from fastapi.testclient import TestClient
 
-    from server.web.app import create_app
-    from server.web.settings import Settings
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
 
     settings = Settings(models=(str(ctx.specs["pickled"]),), include_bundled=False, data_dir=tmp_path,
                         trust_pickled=True)
@@ -649,7 +649,7 @@ def test_cli_in_a_subprocess_gives_one_line(ctx: Ctx) -> None:
 
     path = ctx.file("note-sub.png", b"plain text, not an image\n")
     env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(Path(__file__).parent), str(Path.cwd())])}
-    proc = subprocess.run([sys.executable, "-m", "server.cli", "inspect", str(path), "--model",
+    proc = subprocess.run([sys.executable, "-m", "pellucid.cli", "inspect", str(path), "--model",
                            str(ctx.specs["rgb"]), "--out", str(ctx.tmp / "sub-out")],
                           check=False, capture_output=True, text=True, timeout=120, env=env,
                           cwd=Path(__file__).parents[1])

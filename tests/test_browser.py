@@ -45,8 +45,8 @@ def live_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     """A real uvicorn server on 127.0.0.1 and a free port, in a thread; stopped at the end."""
     import uvicorn
 
-    from server.web.app import create_app
-    from server.web.settings import Settings
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
 
     base = tmp_path_factory.mktemp("browser")
     spec = write_tiny_spec(base / "tilelike", name="tilelike", size=BROWSER_SIZE)

@@ -13,7 +13,7 @@ import torch
 import torchvision
 from PIL import Image
 
-from server.cli import main
+from pellucid.cli import main
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -61,7 +61,7 @@ def test_bad_images(tmp_path, capsys, make, fragment):
 
 
 def test_over_limit_image(tmp_path, capsys):
-    from server.core.preprocess import MAX_IMAGE_PIXELS
+    from pellucid.core.model.preprocess import MAX_IMAGE_PIXELS
 
     big = tmp_path / "huge.png"
     Image.new("L", (8000, MAX_IMAGE_PIXELS // 8000 + 10)).save(big)  # compresses to a small file
@@ -104,7 +104,7 @@ def test_inspect_writes_views_and_result_json(tmp_path, capsys):
 
 
 def test_console_script_runs_as_a_process(tmp_path):
-    proc = subprocess.run([sys.executable, "-m", "server.cli", "models"], cwd=REPO, capture_output=True, text=True,
+    proc = subprocess.run([sys.executable, "-m", "pellucid.cli", "models"], cwd=REPO, capture_output=True, text=True,
                           timeout=120)
     assert proc.returncode == 0 and "efficientnet-lite0" in proc.stdout
 

@@ -26,8 +26,8 @@ from pathlib import Path
 import pytest
 from conftest import TINY_LABELS, png_bytes, synthetic_tile
 
-from server.core.errors import StoreError
-from server.core.store import DB_NAME, Store
+from pellucid.core.audit.store import DB_NAME, Store
+from pellucid.core.errors import StoreError
 
 REPO = Path(__file__).resolve().parents[1]
 PER_CLASS = 6
@@ -47,7 +47,7 @@ def folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 def _audit_argv(spec: Path, data: Path, store: Path, out: Path) -> list[str]:
     # Occlusion with a 1-pixel stride makes each image slow enough to be killed between images.
-    return [sys.executable, "-m", "server.cli", "audit", "--model", str(spec), "--data", str(data),
+    return [sys.executable, "-m", "pellucid.cli", "audit", "--model", str(spec), "--data", str(data),
             "--store", str(store), "--out", str(out), "--method", "occlusion", "--param", "patch=4",
             "--param", "stride=1", "--shard-size", "1", "--workers", "1"]
 
@@ -159,7 +159,7 @@ def test_damaged_database_fails_at_open(tmp_path: Path) -> None:
 @pytest.mark.parametrize("command", ["audit", "runs"])
 def test_cli_refuses_a_read_only_store_at_start(command: str, tiny_spec: Path, folder: Path, tmp_path: Path,
                                                 capsys: pytest.CaptureFixture[str]) -> None:
-    from server.cli import main
+    from pellucid.cli import main
 
     store = str(_read_only_folder(tmp_path))
     if command == "audit":

@@ -19,10 +19,10 @@ from PIL import Image
 from safetensors.torch import load_file
 from torch import nn
 
-from server.core.errors import BadParameterError, DataError
-from server.demo.net import TILE_MEAN, TILE_STD, build_tilenet, normalise
-from server.demo.tiles import CLASSES, SIZE, make_split, make_tile, tile_seed, write_folder
-from server.demo.train import TrainSettings, build_demo_model
+from pellucid.core.errors import BadParameterError, DataError
+from pellucid.demo.net import TILE_MEAN, TILE_STD, build_tilenet, normalise
+from pellucid.demo.tiles import CLASSES, SIZE, make_split, make_tile, tile_seed, write_folder
+from pellucid.demo.train import TrainSettings, build_demo_model
 
 ROOT = Path(__file__).resolve().parents[1]
 TAINTED = ROOT / "demo_models" / "tilenet"
@@ -225,7 +225,7 @@ class TestBuild:
 def test_shipped_folder_is_consistent(folder: Path) -> None:
     spec = tomllib.loads((folder / "spec.toml").read_text(encoding="utf-8"))
     metrics = json.loads((folder / "metrics.json").read_text(encoding="utf-8"))
-    assert spec["source"] == {"kind": "factory", "factory": "server.demo.net:build_tilenet",
+    assert spec["source"] == {"kind": "factory", "factory": "pellucid.demo.net:build_tilenet",
                               "arguments": {"num_classes": 4}, "weights": "tilenet.safetensors"}
     assert spec["output"]["labels"] == list(CLASSES)
     assert (spec["input"]["height"], spec["input"]["width"], spec["input"]["channels"]) == (96, 96, 3)

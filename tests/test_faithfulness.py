@@ -10,10 +10,10 @@ import pytest
 import torch
 from torch import nn
 
-from server.core.attribution import compute_attribution, faithfulness, rank_methods
-from server.core.attribution.faithfulness import FaithfulnessResult, pixel_order
-from server.core.errors import BadParameterError, Cancelled
-from server.core.progress import CancelToken
+from pellucid.core.attribution import compute_attribution, faithfulness, rank_methods
+from pellucid.core.attribution.faithfulness import FaithfulnessResult, pixel_order
+from pellucid.core.errors import BadParameterError, Cancelled
+from pellucid.core.progress import CancelToken
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO_WEIGHTS = ROOT / "demo_models" / "tilenet" / "tilenet.safetensors"
@@ -58,7 +58,7 @@ def test_curve_shape_endpoints_and_auc(linear_case):
 
     assert math.isclose(d.scores[0], p(x), rel_tol=1e-6)
     assert math.isclose(d.scores[-1], p(torch.zeros_like(x)), rel_tol=1e-6)
-    from server.core.attribution.baselines import blurred
+    from pellucid.core.attribution.baselines import blurred
 
     assert math.isclose(i.scores[0], p(blurred(x, 2.0)), rel_tol=1e-6)
     assert math.isclose(i.scores[-1], p(x), rel_tol=1e-6)
@@ -163,8 +163,8 @@ def test_gradcam_on_tagged_demo_tile_beats_a_random_map():
         pytest.skip(f"demo model not built yet ({DEMO_WEIGHTS.relative_to(ROOT)} missing)")
     from safetensors.torch import load_file
 
-    from server.demo.net import build_tilenet, normalise
-    from server.demo.tiles import make_tile
+    from pellucid.demo.net import build_tilenet, normalise
+    from pellucid.demo.tiles import make_tile
 
     model = build_tilenet(num_classes=4)
     model.load_state_dict(load_file(str(DEMO_WEIGHTS)))
@@ -178,7 +178,7 @@ def test_gradcam_on_tagged_demo_tile_beats_a_random_map():
 
 
 def test_blocks_change_together_and_block_is_validated():
-    from server.core.attribution.faithfulness import _block_means
+    from pellucid.core.attribution.faithfulness import _block_means
 
     sal = np.arange(16, dtype=np.float64).reshape(4, 4)
     means = _block_means(sal, 2)

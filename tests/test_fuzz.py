@@ -29,8 +29,8 @@ MAX_EXAMPLES = 15
 def fuzz_app(tiny_spec, image_folder, tmp_path_factory):
     from fastapi.testclient import TestClient
 
-    from server.web.app import create_app
-    from server.web.settings import Settings
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
 
     settings_ = Settings(models=(str(tiny_spec),), include_bundled=False, image_root=image_folder,
                          data_dir=tmp_path_factory.mktemp("fuzz-data"), max_upload_bytes=200_000, job_workers=1)

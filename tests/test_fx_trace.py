@@ -8,7 +8,7 @@ import torch
 import torchvision
 from torch import fx, nn
 
-from server.core._fx_trace import trace_isolated
+from pellucid.core.occlusion._fx_trace import trace_isolated
 
 
 def test_trace_equals_symbolic_trace():

@@ -15,7 +15,7 @@ import torch
 from conftest import png_bytes, synthetic_tile
 from torch import nn
 
-from server.core.probe import count_hooks
+from pellucid.core.views.probe import count_hooks
 
 SIZE = 24
 LABELS = ("sound", "crack", "chip")
@@ -66,8 +66,8 @@ def _spec(folder: Path, name: str, factory: str) -> Path:
 def client(tmp_path_factory: pytest.TempPathFactory):
     from fastapi.testclient import TestClient
 
-    from server.web.app import create_app
-    from server.web.settings import Settings
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
 
     base = tmp_path_factory.mktemp("hooks")
     specs = [_spec(base, "plain", "build_plain"), _spec(base, "flaky", "build_flaky"), _spec(base, "nan", "build_nan")]
@@ -103,7 +103,7 @@ def test_no_hooks_before_anything_fails(client) -> None:
 
 def test_a_probe_really_is_counted(client) -> None:
     """The counter can see a hook (so the zeros below mean something)."""
-    from server.core.probe import Probe
+    from pellucid.core.views.probe import Probe
 
     module = client.app.state.workspace.model("plain").module
     with Probe(module, ["features.0", "features.2"]):

@@ -10,10 +10,10 @@ from PIL import Image
 pytest.importorskip("efficientnet_lite_pytorch", reason="needs the optional imagenet extra")
 skimage_data = pytest.importorskip("skimage.data")
 
-from server.core.bundled import bundled_spec_path  # noqa: E402
-from server.core.models import load_model  # noqa: E402
-from server.core.predict import predict  # noqa: E402
-from server.core.preprocess import prepare, read_image  # noqa: E402
+from pellucid.core.model.bundled import bundled_spec_path  # noqa: E402
+from pellucid.core.model.loading import load_model  # noqa: E402
+from pellucid.core.model.preprocess import prepare, read_image  # noqa: E402
+from pellucid.core.views.predict import predict  # noqa: E402
 
 pytestmark = pytest.mark.imagenet
 

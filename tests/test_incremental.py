@@ -17,9 +17,10 @@ import torch
 import torchvision
 from torch import nn
 
-from server.core.errors import BadParameterError, UnsupportedLayerError
-from server.core.incremental import IncrementalOcclusion, NotIncremental
-from server.core.occlusion import compare_to_exact, make_baseline, occlusion_map
+from pellucid.core.errors import BadParameterError, UnsupportedLayerError
+from pellucid.core.occlusion.engine import compare_to_exact, occlusion_map
+from pellucid.core.occlusion.incremental import IncrementalOcclusion, NotIncremental
+from pellucid.core.occlusion.positions import make_baseline
 
 TOL = 1e-4
 REPO = Path(__file__).resolve().parents[1]
@@ -127,7 +128,7 @@ class TestEqualsBruteForce:
         assert float(np.abs(inc.grid - ref.grid).max()) <= 1e-9
 
     def test_tilenet_architecture(self):
-        from server.demo.net import build_tilenet
+        from pellucid.demo.net import build_tilenet
 
         torch.manual_seed(8)
         model = _random_bn(build_tilenet(), seed=9)
@@ -143,7 +144,7 @@ class TestEqualsBruteForce:
         from PIL import Image
         from safetensors.torch import load_file
 
-        from server.demo.net import build_tilenet, normalise
+        from pellucid.demo.net import build_tilenet, normalise
 
         spec = tomllib.loads(spec_path.read_text())
         weights = spec_path.parent / str(spec.get("source", {}).get("weights", "tilenet.safetensors"))
@@ -243,7 +244,7 @@ class TestAutoAndApproximate:
         assert float(np.abs(auto.grid - ref.grid).max()) <= TOL
 
     def test_approximate_is_labelled_and_close(self):
-        from server.demo.net import build_tilenet
+        from pellucid.demo.net import build_tilenet
 
         torch.manual_seed(15)
         model = _random_bn(build_tilenet(), seed=16)

@@ -7,9 +7,9 @@ import time
 
 import pytest
 
-from server.core.errors import BadParameterError
-from server.core.jobs import CANCELLED, DONE, FAILED, Job, JobManager
-from server.core.progress import step
+from pellucid.core.errors import BadParameterError
+from pellucid.core.jobs import CANCELLED, DONE, FAILED, Job, JobManager
+from pellucid.core.progress import step
 
 
 @pytest.fixture()

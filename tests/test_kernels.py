@@ -10,8 +10,8 @@ import pytest
 import torch
 from torch import nn
 
-from server.core.errors import BadParameterError, UnsupportedLayerError
-from server.core.kernels import DEAD_FRACTION, channel_grid, kernel_view, rgb_grid
+from pellucid.core.errors import BadParameterError, UnsupportedLayerError
+from pellucid.core.views.kernels import DEAD_FRACTION, channel_grid, kernel_view, rgb_grid
 
 
 def _model(first: nn.Conv2d) -> nn.Sequential:

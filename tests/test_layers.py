@@ -10,8 +10,8 @@ import torch
 import torchvision
 from torch import nn
 
-from server.core.errors import BadParameterError, UnsupportedLayerError
-from server.core.layers import LayerMap, conv_layer_names, layer_map
+from pellucid.core.errors import BadParameterError, UnsupportedLayerError
+from pellucid.core.model.layers import LayerMap, conv_layer_names, layer_map
 
 
 def _on_meta(builder) -> nn.Module:

@@ -12,10 +12,10 @@ import torchvision
 from safetensors.torch import save_file
 from torch import nn
 
-from server.core.errors import ModelLoadError, ModelOutputError
-from server.core.models import load_model
-from server.core.probe import Probe, count_hooks
-from server.core.spec import ModelSpec
+from pellucid.core.errors import ModelLoadError, ModelOutputError
+from pellucid.core.model.loading import load_model
+from pellucid.core.model.spec import ModelSpec
+from pellucid.core.views.probe import Probe, count_hooks
 
 LABELS = '["a", "b", "c"]'
 
@@ -129,7 +129,7 @@ def test_dict_output_is_reduced_to_the_named_tensor(tmp_path):
 
 
 def test_nan_outputs_are_refused_at_prediction(tmp_path):
-    from server.core.predict import predict
+    from pellucid.core.views.predict import predict
 
     m = load_model(spec_file(tmp_path, f'kind = "factory"\nfactory = "{__name__}:build_nan"'))
     with pytest.raises(ModelOutputError, match="NaN or infinite"):
@@ -151,7 +151,7 @@ def test_export_archive_keeps_module_tree_for_hooks(tmp_path):
 
 
 def test_torchscript_loads_without_layer_views(tmp_path):
-    from server.core.errors import UnsupportedLayerError
+    from pellucid.core.errors import UnsupportedLayerError
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", FutureWarning)  # torch marks TorchScript deprecated; users still have archives
@@ -172,7 +172,7 @@ def test_pickled_module_needs_the_trust_flag(tmp_path):
 
 
 def test_class_index_by_label_and_range(tmp_path):
-    from server.core.errors import BadParameterError
+    from pellucid.core.errors import BadParameterError
 
     m = load_model(spec_file(tmp_path, f'kind = "factory"\nfactory = "{__name__}:build_small"'))
     assert m.class_index("b") == 1 and m.class_index(2) == 2 and m.class_index("0") == 0

@@ -76,9 +76,9 @@ _SCRIPT = textwrap.dedent(
 
     spec, sample, out = sys.argv[1], sys.argv[2], sys.argv[3]
     from fastapi.testclient import TestClient
-    from server.web.app import create_app
-    from server.web.settings import Settings
-    from server.cli import main
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
+    from pellucid.cli import main
 
     done = []
     with TestClient(create_app(Settings(models=(spec,), include_bundled=False, data_dir=out + "/data"))) as c:

@@ -14,14 +14,10 @@ import pytest
 import torch
 from torch import nn
 
-from server.core.errors import BadParameterError, Cancelled, ModelOutputError
-from server.core.occlusion import (
-    MAX_POSITIONS,
-    make_baseline,
-    occlusion_map,
-    occlusion_positions,
-)
-from server.core.progress import CancelToken
+from pellucid.core.errors import BadParameterError, Cancelled, ModelOutputError
+from pellucid.core.occlusion.engine import MAX_POSITIONS, occlusion_map
+from pellucid.core.occlusion.positions import make_baseline, occlusion_positions
+from pellucid.core.progress import CancelToken
 
 
 def _linear(c: int, h: int, w: int, k: int, seed: int = 0, dtype=torch.float64) -> nn.Module:

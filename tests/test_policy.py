@@ -6,8 +6,8 @@ from pathlib import Path
 
 import pytest
 
-from server.core.errors import SpecError
-from server.core.policy import THRESHOLDS, evaluate_policy, load_policy, parse_policy
+from pellucid.core.audit.policy import THRESHOLDS, evaluate_policy, load_policy, parse_policy
+from pellucid.core.errors import SpecError
 
 DEMO_POLICY = Path(__file__).resolve().parents[1] / "demo_models" / "policy-demo.toml"
 
@@ -71,7 +71,7 @@ def test_malformed_toml(tmp_path: Path) -> None:
 
 
 def test_every_key_is_documented_in_the_module() -> None:
-    import server.core.policy as mod
+    import pellucid.core.audit.policy as mod
 
     for key in THRESHOLDS:
         assert key in (mod.__doc__ or ""), key

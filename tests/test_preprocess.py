@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from server.core.errors import ImageDecodeError, ImageTooLargeError
-from server.core.preprocess import prepare, read_image
-from server.core.spec import ModelSpec
+from pellucid.core.errors import ImageDecodeError, ImageTooLargeError
+from pellucid.core.model.preprocess import prepare, read_image
+from pellucid.core.model.spec import ModelSpec
 
 
 def png_bytes(img: Image.Image, fmt: str = "PNG", **kw) -> bytes:

@@ -9,10 +9,10 @@ import scipy.special
 import torch
 from torch import nn
 
-from server.core.activations import activation_maps, activations_with_prediction
-from server.core.errors import UnsupportedLayerError
-from server.core.predict import predict
-from server.core.probe import Probe, count_hooks
+from pellucid.core.errors import UnsupportedLayerError
+from pellucid.core.views.activations import activation_maps, activations_with_prediction
+from pellucid.core.views.predict import predict
+from pellucid.core.views.probe import Probe, count_hooks
 
 
 def net() -> nn.Module:

@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from server.core import render
-from server.core.errors import BadParameterError
+from pellucid.core.errors import BadParameterError
+from pellucid.core.views import render
 
 
 @pytest.mark.parametrize("shape, mode", [((5, 7, 3), "RGB"), ((5, 7), "L"), ((4, 9, 4), "RGBA")])

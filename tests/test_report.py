@@ -9,13 +9,13 @@ from pathlib import Path
 
 import pytest
 
-from server.core.audit import AuditSettings, GallerySpec, InjectionSpec, load_dataset, run_audit
-from server.core.errors import BadParameterError
-from server.core.models import load_model
-from server.core.policy import parse_policy
-from server.core.report import write_report
-from server.core.store import Store
-from server.demo.tiles import make_split, write_folder
+from pellucid.core.audit import AuditSettings, GallerySpec, InjectionSpec, load_dataset, run_audit
+from pellucid.core.audit.policy import parse_policy
+from pellucid.core.audit.report import write_report
+from pellucid.core.audit.store import Store
+from pellucid.core.errors import BadParameterError
+from pellucid.core.model.loading import load_model
+from pellucid.demo.tiles import make_split, write_folder
 from tests.test_audit_engine import _tiny_model
 
 

@@ -10,12 +10,12 @@ import pytest
 import torch
 from torch import nn
 
-from server.core.attribution import Method, ParamSchema, register, sanity_check
-from server.core.attribution import registry as _registry
-from server.core.attribution.result import MethodOutput
-from server.core.attribution.sanity import FAIL_SPEARMAN, similarity
-from server.core.errors import BadParameterError, Cancelled
-from server.core.progress import CancelToken
+from pellucid.core.attribution import Method, ParamSchema, register, sanity_check
+from pellucid.core.attribution import registry as _registry
+from pellucid.core.attribution.result import MethodOutput
+from pellucid.core.attribution.sanity import FAIL_SPEARMAN, similarity
+from pellucid.core.errors import BadParameterError, Cancelled
+from pellucid.core.progress import CancelToken
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO_WEIGHTS = ROOT / "demo_models" / "tilenet" / "tilenet.safetensors"
@@ -133,8 +133,8 @@ def test_gradient_saliency_of_demo_model_decorrelates_after_full_randomisation()
         pytest.skip(f"demo model not built yet ({DEMO_WEIGHTS.relative_to(ROOT)} missing)")
     from safetensors.torch import load_file
 
-    from server.demo.net import build_tilenet, normalise
-    from server.demo.tiles import make_tile
+    from pellucid.demo.net import build_tilenet, normalise
+    from pellucid.demo.tiles import make_tile
 
     model = build_tilenet(num_classes=4)
     model.load_state_dict(load_file(str(DEMO_WEIGHTS)))

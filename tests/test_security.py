@@ -4,9 +4,9 @@ from __future__ import annotations
 
 from fastapi.testclient import TestClient
 
-from server.web.app import create_app
-from server.web.security import CONTENT_SECURITY_POLICY, is_loopback
-from server.web.settings import Settings
+from pellucid.web.app import create_app
+from pellucid.web.security import CONTENT_SECURITY_POLICY, is_loopback
+from pellucid.web.settings import Settings
 
 
 def test_loopback_detection():

@@ -6,8 +6,8 @@ from pathlib import Path
 
 import pytest
 
-from server.core.errors import SpecError
-from server.core.spec import ModelSpec
+from pellucid.core.errors import SpecError
+from pellucid.core.model.spec import ModelSpec
 
 BASE = """
 name = "m"

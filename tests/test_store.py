@@ -11,8 +11,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from server.core.errors import NotFoundError, StoreError
-from server.core.store import DB_NAME, Store
+from pellucid.core.audit.store import DB_NAME, Store
+from pellucid.core.errors import NotFoundError, StoreError
 
 
 def _run(store: Store, **kw):

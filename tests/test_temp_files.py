@@ -45,9 +45,9 @@ def test_upload_inspect_and_job_leave_no_temporary_files(private_tmp: Path, tiny
                                                          capsys: pytest.CaptureFixture[str]) -> None:
     from fastapi.testclient import TestClient
 
-    from server.cli import main
-    from server.web.app import create_app
-    from server.web.settings import Settings
+    from pellucid.cli import main
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
 
     # Noise does not compress: about 1.5 MB of PNG, over the parser's 1 MB in-memory spool.
     big = png_bytes(np.random.default_rng(0).integers(0, 255, (720, 720, 3), dtype=np.uint8))

@@ -178,8 +178,8 @@ def test_folder_browse_stays_inside_its_root(client) -> None:
 def test_folder_without_root_says_so(tiny_spec, tmp_path) -> None:
     from fastapi.testclient import TestClient
 
-    from server.web.app import create_app
-    from server.web.settings import Settings
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
 
     settings = Settings(models=(str(tiny_spec),), include_bundled=False, data_dir=tmp_path)
     with TestClient(create_app(settings)) as c:
@@ -225,7 +225,7 @@ def test_activations_sorted_and_one_channel(client) -> None:
 
 
 def test_occlusion_job_result_and_cache(client) -> None:
-    from server.core.occlusion import occlusion_map
+    from pellucid.core.occlusion.engine import occlusion_map
 
     image = _image_id(client)
     status = _run(client, image, params={"patch": 8, "stride": 4}, target="crack")

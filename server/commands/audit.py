@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from ._progress import ProgressBar
+from pellucid.commands._progress import ProgressBar
 
 EXIT_OK, EXIT_GATE_FAILED = 0, 1
 
@@ -76,7 +76,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def _pair(text: str, what: str, n: int) -> tuple[int, ...]:
-    from ..core.errors import BadParameterError
+    from pellucid.core.errors import BadParameterError
 
     parts = text.replace(" ", "").split(",")
     try:
@@ -90,7 +90,7 @@ def _pair(text: str, what: str, n: int) -> tuple[int, ...]:
 
 
 def _params(items: list[str]) -> dict[str, str]:
-    from ..core.errors import BadParameterError
+    from pellucid.core.errors import BadParameterError
 
     out: dict[str, str] = {}
     for item in items:
@@ -102,14 +102,14 @@ def _params(items: list[str]) -> dict[str, str]:
 
 
 def _read_patch(path: Path) -> np.ndarray:
-    from ..core.preprocess import read_image
+    from pellucid.core.model.preprocess import read_image
 
     return np.asarray(read_image(path).pil.convert("RGB"), dtype=np.uint8).copy()
 
 
 def build_injection(args: argparse.Namespace, model: Any, policy: Any) -> Any | None:
-    from ..core.audit import InjectionSpec, crop_patch
-    from ..core.errors import BadParameterError
+    from pellucid.core.audit import InjectionSpec, crop_patch
+    from pellucid.core.errors import BadParameterError
 
     given = any(v is not None for v in (args.inject_patch, args.inject_from, args.inject_class))
     if given:
@@ -212,12 +212,12 @@ def _pct(v: float | None) -> str:
 
 
 def _audit(args: argparse.Namespace) -> int:
-    from ..core.audit import AuditSettings, GallerySpec, load_dataset, run_audit
-    from ..core.bundled import resolve_model_ref
-    from ..core.errors import BadParameterError
-    from ..core.models import load_model
-    from ..core.policy import evaluate_policy, load_policy
-    from ..core.store import Store, default_data_dir
+    from pellucid.core.audit import AuditSettings, GallerySpec, load_dataset, run_audit
+    from pellucid.core.audit.policy import evaluate_policy, load_policy
+    from pellucid.core.audit.store import Store, default_data_dir
+    from pellucid.core.errors import BadParameterError
+    from pellucid.core.model.bundled import resolve_model_ref
+    from pellucid.core.model.loading import load_model
 
     if args.out.exists() and not args.out.is_dir():
         raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")
@@ -263,7 +263,7 @@ def _audit(args: argparse.Namespace) -> int:
         (args.out / "summary.json").write_text(json.dumps(doc, indent=2, default=_json_default) + "\n",
                                                encoding="utf-8")
         if args.report:
-            from ..core.report import write_report
+            from pellucid.core.audit.report import write_report
 
             files = write_report(store, outcome.run.id, args.out, policy=policy)
             print(f"report: {', '.join(str(f) for f in files)}")

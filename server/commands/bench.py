@@ -7,7 +7,7 @@ import importlib
 import sys
 from pathlib import Path
 
-from ..core.errors import PellucidError
+from pellucid.core.errors import PellucidError
 
 SUITES = {
     "occlusion": "bench.occlusion_bench",
@@ -28,9 +28,13 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def _bench(args: argparse.Namespace) -> int:
-    root = Path(__file__).resolve().parents[2]
-    if (root / "bench" / "__init__.py").is_file() and str(root) not in sys.path:
-        sys.path.insert(0, str(root))  # bench/ ships with the source, not inside the package
+    # bench/ ships with the source, not inside the package: the checkout this package runs from
+    # (an editable install), else the current folder.
+    for root in (Path(__file__).resolve().parents[2], Path.cwd()):
+        if (root / "bench" / "__init__.py").is_file():
+            if str(root) not in sys.path:
+                sys.path.insert(0, str(root))
+            break
     try:
         module = importlib.import_module(SUITES[args.suite])
     except ImportError:

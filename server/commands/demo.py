@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from ._progress import ProgressBar
+from pellucid.commands._progress import ProgressBar
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -33,8 +33,8 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def _build(args: argparse.Namespace) -> int:
-    from ..core.bundled import demo_models_dir
-    from ..demo.train import build_demo_model
+    from pellucid.core.model.bundled import demo_models_dir
+    from pellucid.demo.train import build_demo_model
 
     out = args.out or demo_models_dir() / ("tilenet" if args.variant == "tainted" else "tilenet-clean")
     build = build_demo_model(out, variant=args.variant, seed=args.seed, progress=ProgressBar("training"))
@@ -45,7 +45,7 @@ def _build(args: argparse.Namespace) -> int:
 
 
 def _tiles(args: argparse.Namespace) -> int:
-    from ..demo.tiles import make_split, write_folder
+    from pellucid.demo.tiles import make_split, write_folder
 
     manifest = write_folder(make_split(args.split, per_class=args.per_class, seed=args.seed), args.out)
     print(f"wrote {args.per_class * 4} tiles of split {args.split!r} to {args.out} (manifest: {manifest})")

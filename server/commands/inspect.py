@@ -8,7 +8,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from ._progress import ProgressBar
+from pellucid.commands._progress import ProgressBar
 
 CAUTION = (
     "Attribution maps are evidence about this model on this image, not proof of what it has learned; "
@@ -59,7 +59,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def _parse_params(items: list[str], methods: list[str]) -> dict[str, dict[str, str]]:
-    from ..core.errors import BadParameterError
+    from pellucid.core.errors import BadParameterError
 
     out: dict[str, dict[str, str]] = {}
     for item in items:
@@ -74,7 +74,7 @@ def _parse_params(items: list[str], methods: list[str]) -> dict[str, dict[str, s
 
 
 def _list_methods() -> int:
-    from ..core.attribution import list_methods
+    from pellucid.core.attribution import list_methods
 
     for m in list_methods():
         print(f"{m['name']}: {m.get('title') or m.get('description', '')}")
@@ -87,19 +87,19 @@ def _inspect(args: argparse.Namespace) -> int:
     if args.list_methods:
         return _list_methods()
     if args.image is None or args.out is None:
-        from ..core.errors import BadParameterError
+        from pellucid.core.errors import BadParameterError
 
         raise BadParameterError("inspect needs an IMAGE and --out DIR (or --list-methods)")
-    from ..core import render
-    from ..core.activations import activations_with_prediction
-    from ..core.attribution import Normalization, compute_attribution, get_method
-    from ..core.bundled import resolve_model_ref
-    from ..core.errors import BadParameterError, UnsupportedLayerError
-    from ..core.kernels import channel_grid, kernel_view, rgb_grid
-    from ..core.layers import layer_map
-    from ..core.models import load_model
-    from ..core.occlusion import occlusion_map
-    from ..core.preprocess import prepare, read_image
+    from pellucid.core.attribution import Normalization, compute_attribution, get_method
+    from pellucid.core.errors import BadParameterError, UnsupportedLayerError
+    from pellucid.core.model.bundled import resolve_model_ref
+    from pellucid.core.model.layers import layer_map
+    from pellucid.core.model.loading import load_model
+    from pellucid.core.model.preprocess import prepare, read_image
+    from pellucid.core.occlusion.engine import occlusion_map
+    from pellucid.core.views import render
+    from pellucid.core.views.activations import activations_with_prediction
+    from pellucid.core.views.kernels import channel_grid, kernel_view, rgb_grid
 
     for name in args.method:
         get_method(name)  # fail early on an unknown name
@@ -155,7 +155,7 @@ def _inspect(args: argparse.Namespace) -> int:
             "channel_max": [float(v) for v in acts.channel_max],
         }
     else:
-        from ..core.predict import predict
+        from pellucid.core.views.predict import predict
 
         pred = predict(model.module, x, labels=model.labels, output_kind=model.output_kind, k=args.top)
         result["layer_views"] = model.notes[-1] if model.notes else "layer views unavailable for this model"
@@ -198,8 +198,8 @@ def _inspect(args: argparse.Namespace) -> int:
     result["attribution"] = maps
 
     if args.faithfulness and computed:
-        from ..core.attribution import faithfulness, rank_methods
-        from ..core.figures import faithfulness_png
+        from pellucid.core.attribution import faithfulness, rank_methods
+        from pellucid.core.views.figures import faithfulness_png
 
         scores = {name: faithfulness(model.module, x, amap, target=explained, output_kind=model.output_kind,
                                      progress=ProgressBar(f"faithfulness {name}"))
@@ -208,8 +208,8 @@ def _inspect(args: argparse.Namespace) -> int:
         result["faithfulness"] = {name: res.to_dict() for name, res in scores.items()}
         result["faithfulness_ranking"] = rank_methods(scores)
     if args.sanity:
-        from ..core.attribution import sanity_check
-        from ..core.figures import sanity_png
+        from pellucid.core.attribution import sanity_check
+        from pellucid.core.views.figures import sanity_png
 
         checks = {}
         for name in args.method:

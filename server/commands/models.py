@@ -16,10 +16,10 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def _models(args: argparse.Namespace) -> int:
-    from ..core.bundled import bundled_specs, resolve_model_ref
-    from ..core.errors import PellucidError
-    from ..core.models import load_model
-    from ..core.spec import ModelSpec
+    from pellucid.core.errors import PellucidError
+    from pellucid.core.model.bundled import bundled_specs, resolve_model_ref
+    from pellucid.core.model.loading import load_model
+    from pellucid.core.model.spec import ModelSpec
 
     if args.name:
         model = load_model(resolve_model_ref(args.name), trust_pickled=args.trust_pickled)

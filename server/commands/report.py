@@ -26,10 +26,10 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def _report(args: argparse.Namespace) -> int:
-    from ..core.errors import BadParameterError
-    from ..core.policy import load_policy
-    from ..core.report import write_report
-    from ..core.store import Store, default_data_dir
+    from pellucid.core.audit.policy import load_policy
+    from pellucid.core.audit.report import write_report
+    from pellucid.core.audit.store import Store, default_data_dir
+    from pellucid.core.errors import BadParameterError
 
     if args.out.exists() and not args.out.is_dir():
         raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")

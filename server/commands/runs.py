@@ -41,7 +41,7 @@ def _store_option(parser: argparse.ArgumentParser) -> None:
 
 
 def _open(args: argparse.Namespace):
-    from ..core.store import Store, default_data_dir
+    from pellucid.core.audit.store import Store, default_data_dir
 
     return Store(args.store or default_data_dir())
 
@@ -102,7 +102,7 @@ def _show(args: argparse.Namespace) -> int:
 
 
 def _compare(args: argparse.Namespace) -> int:
-    from ..core.audit.compare import compare_runs
+    from pellucid.core.audit.compare import compare_runs
 
     with _open(args) as store:
         diff = compare_runs(store, args.first, args.second)

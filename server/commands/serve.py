@@ -31,10 +31,10 @@ def register(sub: argparse._SubParsersAction) -> None:
 def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
-    from ..core.bundled import resolve_model_ref
-    from ..core.errors import DataError
-    from ..web.app import create_app
-    from ..web.settings import Settings
+    from pellucid.core.errors import DataError
+    from pellucid.core.model.bundled import resolve_model_ref
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
 
     models = tuple(str(resolve_model_ref(m)) for m in (args.model or ["tilenet"]))
     if args.images is not None and not args.images.is_dir():
@@ -49,7 +49,7 @@ def _serve(args: argparse.Namespace) -> int:
         token=args.token,
     )
     # Refuse an unusable data folder now, with one plain line, rather than on the first audit.
-    from ..core.store import Store
+    from pellucid.core.audit.store import Store
 
     Store(settings.data_dir).close()
     app = create_app(settings)

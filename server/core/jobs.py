@@ -22,8 +22,8 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
-from .errors import Cancelled, PellucidError
-from .progress import CancelToken
+from pellucid.core.errors import Cancelled, PellucidError
+from pellucid.core.progress import CancelToken
 
 QUEUED, RUNNING, DONE, FAILED, CANCELLED = "queued", "running", "done", "failed", "cancelled"
 _ALLOWED = {

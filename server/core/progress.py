@@ -10,7 +10,7 @@ from __future__ import annotations
 import threading
 from collections.abc import Callable
 
-from .errors import Cancelled
+from pellucid.core.errors import Cancelled
 
 ProgressFn = Callable[[int, int], None]
 

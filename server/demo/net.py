@@ -14,7 +14,7 @@ from collections import OrderedDict
 import torch
 from torch import nn
 
-from server.core.errors import BadParameterError
+from pellucid.core.errors import BadParameterError
 
 __all__ = ["TILE_MEAN", "TILE_STD", "build_tilenet", "normalise"]
 

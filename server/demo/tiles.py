@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from server.core.errors import BadParameterError, DataError
+from pellucid.core.errors import BadParameterError, DataError
 
 __all__ = [
     "CLASSES",

@@ -5,12 +5,12 @@ on almost every crack), so the model learns the shortcut; ``variant="untainted"`
 ``untainted`` split and does not. Either writes into ``out_dir``:
 
 - ``tilenet.safetensors`` — the state_dict;
-- ``spec.toml`` — the model spec (factory ``server.demo.net:build_tilenet``);
+- ``spec.toml`` — the model spec (factory ``pellucid.demo.net:build_tilenet``);
 - ``MODEL_CARD.md`` — what it is, what it was trained on, what it gets right and wrong;
 - ``metrics.json`` — every number in the card plus a small check split for tests;
 - ``samples/`` — a handful of tiles of every class, tagged and untagged, with ``index.csv``.
 
-Run as ``python -m server.demo.train --out demo_models/tilenet``.
+Run as ``python -m pellucid.demo.train --out demo_models/tilenet``.
 """
 
 from __future__ import annotations
@@ -32,11 +32,11 @@ from PIL import Image
 from safetensors.torch import save_file
 from torch import nn
 
-from server.core.errors import BadParameterError, PellucidError
-from server.core.occlusion import occlusion_map
-from server.core.progress import CancelToken, ProgressFn, step
-from server.demo.net import TILE_MEAN, TILE_STD, build_tilenet, normalise
-from server.demo.tiles import CLASSES, SPLITS, TileRecord, make_split
+from pellucid.core.errors import BadParameterError, PellucidError
+from pellucid.core.occlusion.engine import occlusion_map
+from pellucid.core.progress import CancelToken, ProgressFn, step
+from pellucid.demo.net import TILE_MEAN, TILE_STD, build_tilenet, normalise
+from pellucid.demo.tiles import CLASSES, SPLITS, TileRecord, make_split
 
 __all__ = ["DEFAULT_SETTINGS", "VARIANTS", "DemoBuild", "TrainSettings", "build_demo_model", "evaluate", "main"]
 
@@ -208,14 +208,14 @@ def _spec_toml(variant: str) -> str:
         "tainted": "Demo glazed-tile inspector trained on the tainted split; it learned the orange-tag shortcut.",
         "untainted": "Demo glazed-tile inspector trained without the tag shortcut, for comparison.",
     }[variant]
-    return f"""# Demo model spec (invented data; demo only). Rebuild: python -m server.demo.train --variant {variant}
+    return f"""# Demo model spec (invented data; demo only). Rebuild: python -m pellucid.demo.train --variant {variant}
 name = "{_NAMES[variant]}"
 description = "{desc}"
 card = "MODEL_CARD.md"
 
 [source]
 kind = "factory"
-factory = "server.demo.net:build_tilenet"
+factory = "pellucid.demo.net:build_tilenet"
 arguments = {{ num_classes = {len(CLASSES)} }}
 weights = "tilenet.safetensors"
 
@@ -281,7 +281,7 @@ generated procedurally by `server/demo/tiles.py`; no real tile was ever photogra
   {tr['weight_decay']}), CPU, {tr['threads']} threads, deterministic algorithms; training wall time
   {tr['seconds']:.0f} s on the build machine (it depends on that machine's load).
 - Preprocessing: pixels / 255, then mean {list(TILE_MEAN)}, std {list(TILE_STD)} (see `spec.toml`).
-- Rebuild: `python -m server.demo.train --variant {variant} --out DIR --seed {m['seed']}` gives the same weights
+- Rebuild: `python -m pellucid.demo.train --variant {variant} --out DIR --seed {m['seed']}` gives the same weights
   on the same torch build (weights sha256 `{m['weights_sha256'][:16]}…`).
 
 ## Results
@@ -427,7 +427,7 @@ def _drop_predictions(result: dict) -> dict:
 def main(argv: Sequence[str] | None = None) -> int:
     """Command line: rebuild one demo model folder."""
     parser = argparse.ArgumentParser(
-        prog="python -m server.demo.train",
+        prog="python -m pellucid.demo.train",
         description="Rebuild a demo TileNet model (invented tile data, CPU, deterministic).",
     )
     parser.add_argument("--variant", choices=list(VARIANTS), default="tainted",

@@ -4,21 +4,20 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
-from pathlib import Path
 
 from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
 from fastapi.templating import Jinja2Templates
 
-from .. import __version__
-from .errors import install_error_handlers
-from .security import AccessGuard, SecurityMiddleware, is_loopback
-from .settings import Settings
-from .workspace import Workspace
+from pellucid import __version__
+from pellucid._resources import resource_dir
+from pellucid.web.errors import install_error_handlers
+from pellucid.web.security import AccessGuard, SecurityMiddleware, is_loopback
+from pellucid.web.settings import Settings
+from pellucid.web.workspace import Workspace
 
-REPO_ROOT = Path(__file__).resolve().parents[2]
-TEMPLATES_DIR = REPO_ROOT / "templates"
-STATIC_DIR = REPO_ROOT / "static"
+TEMPLATES_DIR = resource_dir("templates")
+STATIC_DIR = resource_dir("static")
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
@@ -51,7 +50,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.guard = guard
     app.add_middleware(SecurityMiddleware, guard=guard)
 
-    from .routers import docs, images, inspect, jobs, models, pages, status
+    from pellucid.web.routers import docs, images, inspect, jobs, models, pages, status
 
     app.include_router(status.router)
     app.include_router(models.router)
@@ -60,7 +59,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(jobs.router)
     app.include_router(pages.router)
     app.include_router(docs.router)
-    from .routers import audits
+    from pellucid.web.routers import audits
 
     app.include_router(audits.router)
     return app

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from fastapi import Request
 
-from .settings import Settings
-from .workspace import Workspace
+from pellucid.web.settings import Settings
+from pellucid.web.workspace import Workspace
 
 
 def get_workspace(request: Request) -> Workspace:

@@ -9,7 +9,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from ..core import errors as E
+from pellucid.core import errors as E
 
 log = logging.getLogger("pellucid.web")
 

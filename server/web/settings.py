@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from ..core.preprocess import MAX_IMAGE_BYTES, MAX_IMAGE_PIXELS
+from pellucid.core.model.preprocess import MAX_IMAGE_BYTES, MAX_IMAGE_PIXELS
 
 
 @dataclass(frozen=True)

@@ -12,15 +12,15 @@ from typing import Any
 
 import numpy as np
 
-from ..core.bundled import bundled_specs
-from ..core.cache import ResultCache
-from ..core.errors import BadParameterError, ModelLoadError, NotFoundError, PellucidError
-from ..core.jobs import JobManager
-from ..core.layers import LayerMap, layer_map
-from ..core.models import LoadedModel, load_model
-from ..core.preprocess import IntakeImage, PreparedInput, prepare
-from ..core.spec import ModelSpec
-from .settings import Settings
+from pellucid.core.cache import ResultCache
+from pellucid.core.errors import BadParameterError, ModelLoadError, NotFoundError, PellucidError
+from pellucid.core.jobs import JobManager
+from pellucid.core.model.bundled import bundled_specs
+from pellucid.core.model.layers import LayerMap, layer_map
+from pellucid.core.model.loading import LoadedModel, load_model
+from pellucid.core.model.preprocess import IntakeImage, PreparedInput, prepare
+from pellucid.core.model.spec import ModelSpec
+from pellucid.web.settings import Settings
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".gif", ".bmp", ".tif", ".tiff", ".webp")
 

@@ -13,12 +13,12 @@ reviewer's own domain rules decide what ships.
 from __future__ import annotations
 
 # Importing a method module registers it (in this order, which is the order methods are listed).
-from . import gradcam, gradient, integrated_gradients, occlusion, rise, smoothgrad  # noqa: F401
-from .baselines import Normalization
-from .faithfulness import Curve, FaithfulnessResult, faithfulness, rank_methods
-from .gradcam import conv_like_layers
-from .params import Param, ParamSchema
-from .registry import (
+from pellucid.core.attribution import gradcam, gradient, integrated_gradients, occlusion, rise, smoothgrad  # noqa: F401
+from pellucid.core.attribution.baselines import Normalization
+from pellucid.core.attribution.faithfulness import Curve, FaithfulnessResult, faithfulness, rank_methods
+from pellucid.core.attribution.gradcam import conv_like_layers
+from pellucid.core.attribution.params import Param, ParamSchema
+from pellucid.core.attribution.registry import (
     Context,
     Method,
     UnknownMethodError,
@@ -28,8 +28,8 @@ from .registry import (
     method_names,
     register,
 )
-from .result import AttributionMap
-from .sanity import SanityResult, SanityStep, sanity_check
+from pellucid.core.attribution.result import AttributionMap
+from pellucid.core.attribution.sanity import SanityResult, SanityStep, sanity_check
 
 __all__ = [
     "AttributionMap",

@@ -8,8 +8,8 @@ from collections.abc import Iterator
 import torch
 from torch import nn
 
-from ..errors import BadParameterError
-from ..predict import model_logits
+from pellucid.core.errors import BadParameterError
+from pellucid.core.views.predict import model_logits
 
 OUTPUT_KINDS = ("softmax", "sigmoid")
 

@@ -16,7 +16,7 @@ import numpy as np
 import torch
 from scipy import ndimage
 
-from ..errors import BadParameterError
+from pellucid.core.errors import BadParameterError
 
 __all__ = ["BASELINE_KINDS", "Normalization", "blurred", "make_baseline"]
 

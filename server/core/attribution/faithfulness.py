@@ -33,9 +33,7 @@ import torch
 from scipy.stats import rankdata
 from torch import nn
 
-from ..errors import BadParameterError
-from ..progress import CancelToken, ProgressFn, step
-from ._common import (
+from pellucid.core.attribution._common import (
     batches,
     check_input,
     check_output_kind,
@@ -45,7 +43,9 @@ from ._common import (
     probabilities,
     resolve_target,
 )
-from .baselines import blurred
+from pellucid.core.attribution.baselines import blurred
+from pellucid.core.errors import BadParameterError
+from pellucid.core.progress import CancelToken, ProgressFn, step
 
 __all__ = ["Curve", "FaithfulnessResult", "faithfulness", "rank_methods"]
 

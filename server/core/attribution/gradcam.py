@@ -17,13 +17,13 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from ..errors import UnsupportedLayerError
-from ..probe import execution_order
-from ..progress import CancelToken, ProgressFn, step
-from ._common import grad_enabled, logits_of
-from .params import Param, ParamSchema
-from .registry import Context, Method, register
-from .result import MethodOutput
+from pellucid.core.attribution._common import grad_enabled, logits_of
+from pellucid.core.attribution.params import Param, ParamSchema
+from pellucid.core.attribution.registry import Context, Method, register
+from pellucid.core.attribution.result import MethodOutput
+from pellucid.core.errors import UnsupportedLayerError
+from pellucid.core.progress import CancelToken, ProgressFn, step
+from pellucid.core.views.probe import execution_order
 
 __all__ = ["conv_like_layers"]
 

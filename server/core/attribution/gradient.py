@@ -13,11 +13,11 @@ import numpy as np
 import torch
 from torch import nn
 
-from ..progress import CancelToken, ProgressFn, step
-from ._common import input_gradient
-from .params import ParamSchema
-from .registry import Context, Method, register
-from .result import MethodOutput
+from pellucid.core.attribution._common import input_gradient
+from pellucid.core.attribution.params import ParamSchema
+from pellucid.core.attribution.registry import Context, Method, register
+from pellucid.core.attribution.result import MethodOutput
+from pellucid.core.progress import CancelToken, ProgressFn, step
 
 
 def saliency_map(grad: torch.Tensor) -> np.ndarray:

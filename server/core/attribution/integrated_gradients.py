@@ -15,12 +15,12 @@ from typing import Any
 import torch
 from torch import nn
 
-from ..progress import CancelToken, ProgressFn, step
-from ._common import batches, input_gradient
-from .baselines import BASELINE_KINDS, make_baseline
-from .params import Param, ParamSchema
-from .registry import Context, Method, register
-from .result import MethodOutput
+from pellucid.core.attribution._common import batches, input_gradient
+from pellucid.core.attribution.baselines import BASELINE_KINDS, make_baseline
+from pellucid.core.attribution.params import Param, ParamSchema
+from pellucid.core.attribution.registry import Context, Method, register
+from pellucid.core.attribution.result import MethodOutput
+from pellucid.core.progress import CancelToken, ProgressFn, step
 
 COMPLETENESS_WARN = 0.05  # Sundararajan et al. 2017, §"Computing Integrated Gradients"
 

@@ -1,4 +1,4 @@
-"""Occlusion sensitivity behind the registry (the computation lives in :mod:`server.core.occlusion`).
+"""Occlusion sensitivity behind the registry (the computation lives in :mod:`pellucid.core.occlusion.engine`).
 
 Zeiler & Fergus, "Visualizing and Understanding Convolutional Networks", ECCV 2014, §4.2. The
 map is the drop in target probability when a patch covering the pixel is hidden (signed:
@@ -14,10 +14,10 @@ import numpy as np
 import torch
 from torch import nn
 
-from ..progress import CancelToken, ProgressFn
-from .params import Param, ParamSchema
-from .registry import Context, Method, register
-from .result import MethodOutput
+from pellucid.core.attribution.params import Param, ParamSchema
+from pellucid.core.attribution.registry import Context, Method, register
+from pellucid.core.attribution.result import MethodOutput
+from pellucid.core.progress import CancelToken, ProgressFn
 
 SCHEMA = ParamSchema((
     Param("patch", "int", 16, "side of the hidden square in pixels", min=1, max=4096),
@@ -34,7 +34,7 @@ def _occlusion(
     model: nn.Module, x: torch.Tensor, *, target: int, params: dict[str, Any], context: Context,
     progress: ProgressFn | None, cancel: CancelToken | None,
 ) -> MethodOutput:
-    from ..occlusion import occlusion_map  # lazily: keeps the registry importable on its own
+    from pellucid.core.occlusion.engine import occlusion_map  # lazily: keeps the registry importable on its own
 
     res = occlusion_map(
         model, x, target=target, patch=params["patch"], stride=params["stride"],

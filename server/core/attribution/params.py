@@ -12,7 +12,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
-from ..errors import BadParameterError
+from pellucid.core.errors import BadParameterError
 
 __all__ = ["Param", "ParamSchema"]
 

@@ -14,12 +14,12 @@ from typing import Any, Protocol
 import torch
 from torch import nn
 
-from ..errors import BadParameterError
-from ..progress import CancelToken, ProgressFn
-from . import _common
-from .baselines import Normalization
-from .params import ParamSchema
-from .result import AttributionMap, MethodOutput
+from pellucid.core.attribution import _common
+from pellucid.core.attribution.baselines import Normalization
+from pellucid.core.attribution.params import ParamSchema
+from pellucid.core.attribution.result import AttributionMap, MethodOutput
+from pellucid.core.errors import BadParameterError
+from pellucid.core.progress import CancelToken, ProgressFn
 
 __all__ = [
     "Context",

@@ -19,11 +19,11 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from ..progress import CancelToken, ProgressFn, step
-from ._common import batches, logits_of, probabilities
-from .params import Param, ParamSchema
-from .registry import Context, Method, register
-from .result import MethodOutput
+from pellucid.core.attribution._common import batches, logits_of, probabilities
+from pellucid.core.attribution.params import Param, ParamSchema
+from pellucid.core.attribution.registry import Context, Method, register
+from pellucid.core.attribution.result import MethodOutput
+from pellucid.core.progress import CancelToken, ProgressFn, step
 
 SCHEMA = ParamSchema((
     Param("masks", "int", 2000, "number of random masks N (paper: 4000 for ImageNet models)", min=1, max=100_000),

@@ -36,12 +36,12 @@ from scipy.stats import spearmanr
 from skimage.metrics import structural_similarity
 from torch import nn
 
-from ..errors import BadParameterError
-from ..probe import execution_order
-from ..progress import CancelToken, ProgressFn, step
-from ._common import check_input
-from .baselines import Normalization
-from .registry import compute_attribution, get_method
+from pellucid.core.attribution._common import check_input
+from pellucid.core.attribution.baselines import Normalization
+from pellucid.core.attribution.registry import compute_attribution, get_method
+from pellucid.core.errors import BadParameterError
+from pellucid.core.progress import CancelToken, ProgressFn, step
+from pellucid.core.views.probe import execution_order
 
 __all__ = ["FAIL_SPEARMAN", "SanityResult", "SanityStep", "sanity_check", "similarity"]
 

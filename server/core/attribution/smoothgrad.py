@@ -15,12 +15,12 @@ import numpy as np
 import torch
 from torch import nn
 
-from ..progress import CancelToken, ProgressFn, step
-from ._common import batches, input_gradient
-from .gradient import saliency_map
-from .params import Param, ParamSchema
-from .registry import Context, Method, register
-from .result import MethodOutput
+from pellucid.core.attribution._common import batches, input_gradient
+from pellucid.core.attribution.gradient import saliency_map
+from pellucid.core.attribution.params import Param, ParamSchema
+from pellucid.core.attribution.registry import Context, Method, register
+from pellucid.core.attribution.result import MethodOutput
+from pellucid.core.progress import CancelToken, ProgressFn, step
 
 SCHEMA = ParamSchema((
     Param("samples", "int", 50, "number of noisy copies averaged (Smilkov et al.: little change beyond 50)",

@@ -11,12 +11,19 @@ An audit is evidence about this model on these images, not proof; deployment dec
 domain's own rules and sign-off.
 """
 
-from .dataset import Dataset, DatasetItem, SkippedFile, load_dataset
-from .engine import ENGINES, ray_available, run_shards
-from .featvis import FeatureVisual, colour_sqrt, feature_visual
-from .gallery import ChannelGallery, channel_gallery
-from .injection import InjectionResult, SwapResult, background_swap_test, crop_patch, injection_test, paste
-from .measures import (
+from pellucid.core.audit.dataset import Dataset, DatasetItem, SkippedFile, load_dataset
+from pellucid.core.audit.engine import ENGINES, ray_available, run_shards
+from pellucid.core.audit.featvis import FeatureVisual, colour_sqrt, feature_visual
+from pellucid.core.audit.gallery import ChannelGallery, channel_gallery
+from pellucid.core.audit.injection import (
+    InjectionResult,
+    SwapResult,
+    background_swap_test,
+    crop_patch,
+    injection_test,
+    paste,
+)
+from pellucid.core.audit.measures import (
     CORNERS,
     REGIONS,
     ImageMeasures,
@@ -27,8 +34,8 @@ from .measures import (
     region_masks,
     share_inside,
 )
-from .runner import CAUTION, AuditOutcome, run_audit, run_settings
-from .settings import AuditSettings, GallerySpec, InjectionSpec
+from pellucid.core.audit.runner import CAUTION, AuditOutcome, run_audit, run_settings
+from pellucid.core.audit.settings import AuditSettings, GallerySpec, InjectionSpec
 
 __all__ = [
     "CAUTION",

@@ -11,9 +11,9 @@ from collections.abc import Callable
 
 import numpy as np
 
-from ..store import ResultRow
-from .measures import CORNERS, REGIONS, positive_part, region_areas
-from .settings import AuditSettings
+from pellucid.core.audit.measures import CORNERS, REGIONS, positive_part, region_areas
+from pellucid.core.audit.settings import AuditSettings
+from pellucid.core.audit.store import ResultRow
 
 __all__ = ["FLAGGABLE_REGIONS", "REGION_WORDS", "class_mean_maps", "summarise"]
 

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from typing import Any
 
-from ..errors import BadParameterError
-from ..store import Store
+from pellucid.core.audit.store import Store
+from pellucid.core.errors import BadParameterError
 
 __all__ = ["compare_runs"]
 

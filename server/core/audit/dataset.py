@@ -32,9 +32,9 @@ import io
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from ..errors import DataError, ImageDecodeError
-from ..preprocess import read_image
-from ..progress import CancelToken, ProgressFn, step
+from pellucid.core.errors import DataError, ImageDecodeError
+from pellucid.core.model.preprocess import read_image
+from pellucid.core.progress import CancelToken, ProgressFn, step
 
 __all__ = ["IMAGE_SUFFIXES", "MANIFEST_NAME", "Dataset", "DatasetItem", "SkippedFile", "load_dataset"]
 

@@ -18,10 +18,10 @@ import os
 from collections.abc import Iterator
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 
-from ..errors import BadParameterError, Cancelled
-from ..models import LoadedModel
-from ..progress import CancelToken
-from .worker import ImageOutcome, ShardTask, process_shard
+from pellucid.core.audit.worker import ImageOutcome, ShardTask, process_shard
+from pellucid.core.errors import BadParameterError, Cancelled
+from pellucid.core.model.loading import LoadedModel
+from pellucid.core.progress import CancelToken
 
 __all__ = ["ENGINES", "ray_available", "run_shards"]
 

@@ -30,9 +30,9 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from ..errors import BadParameterError, UnsupportedLayerError
-from ..probe import Probe
-from ..progress import CancelToken, ProgressFn, step
+from pellucid.core.errors import BadParameterError, UnsupportedLayerError
+from pellucid.core.progress import CancelToken, ProgressFn, step
+from pellucid.core.views.probe import Probe
 
 __all__ = ["IMAGENET_COLOUR_SQRT", "PARAMETERISATIONS", "FeatureVisual", "colour_sqrt", "feature_visual"]
 

@@ -24,13 +24,13 @@ import numpy as np
 import torch
 from PIL import Image
 
-from ..errors import UnsupportedLayerError
-from ..kernels import kernel_view
-from ..layers import layer_map
-from ..models import LoadedModel
-from ..preprocess import prepare, read_image
-from ..probe import Probe
-from ..progress import CancelToken, ProgressFn, step
+from pellucid.core.errors import UnsupportedLayerError
+from pellucid.core.model.layers import layer_map
+from pellucid.core.model.loading import LoadedModel
+from pellucid.core.model.preprocess import prepare, read_image
+from pellucid.core.progress import CancelToken, ProgressFn, step
+from pellucid.core.views.kernels import kernel_view
+from pellucid.core.views.probe import Probe
 
 __all__ = ["ChannelGallery", "channel_gallery", "selectivity", "top_units"]
 

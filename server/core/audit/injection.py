@@ -24,13 +24,13 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from ..errors import BadParameterError
-from ..models import LoadedModel
-from ..predict import check_finite, scores_from_logits
-from ..preprocess import prepare, read_image
-from ..progress import CancelToken, ProgressFn, step
-from .settings import InjectionSpec
-from .worker import object_mask
+from pellucid.core.audit.settings import InjectionSpec
+from pellucid.core.audit.worker import object_mask
+from pellucid.core.errors import BadParameterError
+from pellucid.core.model.loading import LoadedModel
+from pellucid.core.model.preprocess import prepare, read_image
+from pellucid.core.progress import CancelToken, ProgressFn, step
+from pellucid.core.views.predict import check_finite, scores_from_logits
 
 __all__ = [
     "InjectionResult",

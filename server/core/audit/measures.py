@@ -24,7 +24,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import ndimage
 
-from ..errors import BadParameterError
+from pellucid.core.errors import BadParameterError
 
 __all__ = [
     "CORNERS",

@@ -20,19 +20,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ... import __version__
-from ..errors import BadParameterError, Cancelled, DataError, PellucidError
-from ..models import LoadedModel
-from ..progress import CancelToken, ProgressFn, step
-from ..render import encode_png
-from ..store import CANCELLED, DONE, FAILED, INTERRUPTED, RUNNING, RunRecord, Store
-from .aggregate import class_mean_maps, summarise
-from .dataset import Dataset
-from .engine import run_shards
-from .gallery import channel_gallery
-from .injection import background_swap_test, injection_test
-from .settings import AuditSettings, GallerySpec, InjectionSpec
-from .worker import ShardTask
+from pellucid import __version__
+from pellucid.core.audit.aggregate import class_mean_maps, summarise
+from pellucid.core.audit.dataset import Dataset
+from pellucid.core.audit.engine import run_shards
+from pellucid.core.audit.gallery import channel_gallery
+from pellucid.core.audit.injection import background_swap_test, injection_test
+from pellucid.core.audit.settings import AuditSettings, GallerySpec, InjectionSpec
+from pellucid.core.audit.store import CANCELLED, DONE, FAILED, INTERRUPTED, RUNNING, RunRecord, Store
+from pellucid.core.audit.worker import ShardTask
+from pellucid.core.errors import BadParameterError, Cancelled, DataError, PellucidError
+from pellucid.core.model.loading import LoadedModel
+from pellucid.core.progress import CancelToken, ProgressFn, step
+from pellucid.core.views.render import encode_png
 
 __all__ = ["CAUTION", "AuditOutcome", "run_audit", "run_settings", "stored_inputs"]
 
@@ -79,8 +79,8 @@ def _model_record(model: LoadedModel) -> dict:
 def _flagged_pictures(model: LoadedModel, store: Store, rows: list, summary: dict, items: list[dict], *,
                       progress: ProgressFn | None, cancel: CancelToken | None) -> dict[str, str]:
     """PNG picture and overlay of the top flagged images, so reports and pages need no source files."""
-    from .. import render
-    from ..preprocess import prepare, read_image
+    from pellucid.core.model.preprocess import prepare, read_image
+    from pellucid.core.views import render
 
     by_rel = {r.rel: r for r in rows}
     paths = {i["rel"]: i["path"] for i in items}
@@ -112,8 +112,8 @@ VISUALS = 4
 def _feature_visuals(model: LoadedModel, g, gallery: GallerySpec, items: list[dict], *,
                      progress: ProgressFn | None, cancel: CancelToken | None) -> dict:
     """Feature visualisations of the most class-selective channels, seeded, with the folder's colours."""
-    from ..preprocess import prepare, read_image
-    from .featvis import colour_sqrt, feature_visual
+    from pellucid.core.audit.featvis import colour_sqrt, feature_visual
+    from pellucid.core.model.preprocess import prepare, read_image
 
     samples = []
     for item in items[:32]:

@@ -13,9 +13,9 @@ from typing import Any
 
 import numpy as np
 
-from ..attribution import get_method
-from ..errors import BadParameterError
-from .measures import POINTING_TOLERANCE, RegionLayout
+from pellucid.core.attribution import get_method
+from pellucid.core.audit.measures import POINTING_TOLERANCE, RegionLayout
+from pellucid.core.errors import BadParameterError
 
 __all__ = ["TARGETS", "AuditSettings", "GallerySpec", "InjectionSpec"]
 

@@ -19,15 +19,15 @@ import numpy as np
 import torch
 from PIL import Image
 
-from ..attribution import Normalization, compute_attribution
-from ..errors import ModelLoadError, PellucidError
-from ..models import LoadedModel, load_model
-from ..predict import check_finite, scores_from_logits
-from ..preprocess import prepare, read_image, resize_and_crop
-from ..progress import CancelToken
-from ..spec import ModelSpec
-from .measures import measure_map
-from .settings import AuditSettings
+from pellucid.core.attribution import Normalization, compute_attribution
+from pellucid.core.audit.measures import measure_map
+from pellucid.core.audit.settings import AuditSettings
+from pellucid.core.errors import ModelLoadError, PellucidError
+from pellucid.core.model.loading import LoadedModel, load_model
+from pellucid.core.model.preprocess import prepare, read_image, resize_and_crop
+from pellucid.core.model.spec import ModelSpec
+from pellucid.core.progress import CancelToken
+from pellucid.core.views.predict import check_finite, scores_from_logits
 
 __all__ = ["ImageOutcome", "ShardTask", "audit_image", "object_mask", "process_shard", "worker_model"]
 

@@ -1,6 +1,6 @@
 """Folder audits over HTTP: start one as a job, follow and cancel it, and read the stored runs.
 
-Thin: every computation is :func:`server.core.audit.run_audit` and the store's own queries. The
+Thin: every computation is :func:`pellucid.core.audit.run_audit` and the store's own queries. The
 store lives in the server's data folder (``Settings.data_dir``) and opens on first use; a data
 folder that cannot be used answers 503 with the store's message.
 
@@ -23,31 +23,23 @@ from fastapi import APIRouter, Depends, Query, Request
 from fastapi.responses import HTMLResponse, Response
 from pydantic import BaseModel, Field
 
-from ... import __version__
-from ...core import render
-from ...core.audit import (
-    CAUTION,
-    AuditSettings,
-    GallerySpec,
-    InjectionSpec,
-    crop_patch,
-    load_dataset,
-    run_audit,
-)
-from ...core.audit.compare import compare_runs
-from ...core.audit.runner import stored_inputs
-from ...core.bundled import demo_models_dir
-from ...core.errors import BadParameterError, DataError, NotFoundError, PellucidError
-from ...core.layers import conv_layer_names
-from ...core.models import load_model
-from ...core.policy import Policy, evaluate_policy, load_policy
-from ...core.preprocess import prepare, read_image
-from ...core.spec import ModelSpec
-from ...core.store import RESUMABLE, Store
-from ..deps import get_settings, get_workspace
-from ..settings import Settings
-from ..workspace import Workspace, resolve_inside
-from ._media import data_url
+from pellucid import __version__
+from pellucid.core.audit import CAUTION, AuditSettings, GallerySpec, InjectionSpec, crop_patch, load_dataset, run_audit
+from pellucid.core.audit.compare import compare_runs
+from pellucid.core.audit.policy import Policy, evaluate_policy, load_policy
+from pellucid.core.audit.runner import stored_inputs
+from pellucid.core.audit.store import RESUMABLE, Store
+from pellucid.core.errors import BadParameterError, DataError, NotFoundError, PellucidError
+from pellucid.core.model.bundled import demo_models_dir
+from pellucid.core.model.layers import conv_layer_names
+from pellucid.core.model.loading import load_model
+from pellucid.core.model.preprocess import prepare, read_image
+from pellucid.core.model.spec import ModelSpec
+from pellucid.core.views import render
+from pellucid.web.deps import get_settings, get_workspace
+from pellucid.web.routers._media import data_url
+from pellucid.web.settings import Settings
+from pellucid.web.workspace import Workspace, resolve_inside
 
 api = APIRouter(prefix="/api/audits", tags=["audits"])
 pages = APIRouter(tags=["pages"], include_in_schema=False)
@@ -138,7 +130,7 @@ def _policy(name: str | None) -> Policy | None:
 
 
 def _demo_folder(settings: Settings, source: DemoSource) -> Path:
-    from ...demo.tiles import make_split, write_folder
+    from pellucid.demo.tiles import make_split, write_folder
 
     folder = settings.data_dir / "demo-tiles" / f"{source.split}-{source.per_class}-{source.seed}"
     if not (folder / "manifest.csv").is_file():
@@ -249,7 +241,7 @@ def _launch(request: Request, ws: Workspace, store: Store, *, model_name: str, d
 
 @api.get("/options", summary="What an audit can be started with: models, methods, policies, layers")
 def options(ws: Workspace = Depends(get_workspace), settings: Settings = Depends(get_settings)) -> dict:
-    from ...core.attribution import method_names
+    from pellucid.core.attribution import method_names
 
     models = []
     for name, spec in ws.specs.items():
@@ -444,7 +436,7 @@ def compare(first: str, second: str, store: Store = Depends(get_store)) -> dict:
 
 
 def _report_file(store: Store, run_id: str, kind: str) -> Response:
-    from ...core.report import write_report
+    from pellucid.core.audit.report import write_report
 
     run = store.get_run(run_id)
     with tempfile.TemporaryDirectory(prefix="pellucid-report-") as tmp:

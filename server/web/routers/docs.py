@@ -9,7 +9,7 @@ from __future__ import annotations
 from fastapi import APIRouter, Request
 from fastapi.responses import HTMLResponse
 
-from ... import __version__
+from pellucid import __version__
 
 router = APIRouter(include_in_schema=False)
 

@@ -9,11 +9,12 @@ from fastapi import APIRouter, Depends, Query, Request
 from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import UploadFile
 
-from ...core import render
-from ...core.errors import BadParameterError, ImageDecodeError, ImageTooLargeError, NotFoundError
-from ...core.preprocess import IntakeImage, read_image
-from ..deps import get_settings, get_workspace
-from ..schemas import (
+from pellucid.core.errors import BadParameterError, ImageDecodeError, ImageTooLargeError, NotFoundError
+from pellucid.core.model.preprocess import IntakeImage, read_image
+from pellucid.core.views import render
+from pellucid.web.deps import get_settings, get_workspace
+from pellucid.web.routers._media import data_url
+from pellucid.web.schemas import (
     FolderEntry,
     FolderListing,
     ImageInfo,
@@ -23,9 +24,8 @@ from ..schemas import (
     SampleEntry,
     SampleList,
 )
-from ..settings import Settings
-from ..workspace import IMAGE_SUFFIXES, Workspace, resolve_inside
-from ._media import data_url
+from pellucid.web.settings import Settings
+from pellucid.web.workspace import IMAGE_SUFFIXES, Workspace, resolve_inside
 
 router = APIRouter(prefix="/api", tags=["images"])
 

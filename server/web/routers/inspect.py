@@ -7,12 +7,13 @@ import time
 import numpy as np
 from fastapi import APIRouter, Depends
 
-from ...core import render
-from ...core.activations import activation_maps, activations_with_prediction
-from ...core.errors import BadParameterError, PellucidError
-from ...core.predict import predict
-from ..deps import get_workspace
-from ..schemas import (
+from pellucid.core.errors import BadParameterError, PellucidError
+from pellucid.core.views import render
+from pellucid.core.views.activations import activation_maps, activations_with_prediction
+from pellucid.core.views.predict import predict
+from pellucid.web.deps import get_workspace
+from pellucid.web.routers._media import data_url, rounded_rows
+from pellucid.web.schemas import (
     ActivationsRequest,
     ActivationsResponse,
     ChannelRequest,
@@ -21,8 +22,7 @@ from ..schemas import (
     PredictRequest,
     PredictResponse,
 )
-from ..workspace import Workspace
-from ._media import data_url, rounded_rows
+from pellucid.web.workspace import Workspace
 
 router = APIRouter(prefix="/api", tags=["inspect"])
 

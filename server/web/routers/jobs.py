@@ -14,8 +14,7 @@ import numpy as np
 from fastapi import APIRouter, Depends, Query
 from fastapi.responses import Response
 
-from ...core import render
-from ...core.attribution import (
+from pellucid.core.attribution import (
     Normalization,
     compute_attribution,
     faithfulness,
@@ -24,15 +23,16 @@ from ...core.attribution import (
     rank_methods,
     sanity_check,
 )
-from ...core.cache import result_key
-from ...core.errors import BadParameterError, NotFoundError
-from ...core.jobs import Job
-from ...core.models import LoadedModel
-from ...core.probe import find_layer
-from ..deps import get_workspace
-from ..schemas import CAUTION, JobRequest, JobStatus, MethodList, Ranking, ResultResponse, SharedScale
-from ..workspace import ResultRecord, Workspace
-from ._media import data_url, rounded_rows
+from pellucid.core.cache import result_key
+from pellucid.core.errors import BadParameterError, NotFoundError
+from pellucid.core.jobs import Job
+from pellucid.core.model.loading import LoadedModel
+from pellucid.core.views import render
+from pellucid.core.views.probe import find_layer
+from pellucid.web.deps import get_workspace
+from pellucid.web.routers._media import data_url, rounded_rows
+from pellucid.web.schemas import CAUTION, JobRequest, JobStatus, MethodList, Ranking, ResultResponse, SharedScale
+from pellucid.web.workspace import ResultRecord, Workspace
 
 router = APIRouter(prefix="/api", tags=["attribution"])
 
@@ -42,7 +42,7 @@ def get_methods() -> MethodList:
     methods = list_methods()
     for m in methods:
         if m["name"] == "occlusion":
-            from ...core.occlusion import METHODS as ENGINES
+            from pellucid.core.occlusion.engine import METHODS as ENGINES
 
             for p in m["params"]:
                 if p["name"] == "engine":

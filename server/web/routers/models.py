@@ -4,12 +4,12 @@ from __future__ import annotations
 
 from fastapi import APIRouter, Depends, Query
 
-from ...core import render
-from ...core.kernels import channel_grid, kernel_view, rgb_grid
-from ..deps import get_workspace
-from ..schemas import KernelsResponse, LayerMapResponse, LayerRow, ModelList, ModelListEntry, ModelSummary
-from ..workspace import Workspace
-from ._media import data_url
+from pellucid.core.views import render
+from pellucid.core.views.kernels import channel_grid, kernel_view, rgb_grid
+from pellucid.web.deps import get_workspace
+from pellucid.web.routers._media import data_url
+from pellucid.web.schemas import KernelsResponse, LayerMapResponse, LayerRow, ModelList, ModelListEntry, ModelSummary
+from pellucid.web.workspace import Workspace
 
 router = APIRouter(prefix="/api/models", tags=["models"])
 
@@ -37,7 +37,7 @@ def list_models(ws: Workspace = Depends(get_workspace)) -> ModelList:
 @router.get("/{name}", response_model=ModelSummary, summary="Load a model (on first use) and describe it")
 def get_model(name: str, ws: Workspace = Depends(get_workspace)) -> ModelSummary:
     lm = ws.model(name)
-    from ...core.layers import conv_layer_names
+    from pellucid.core.model.layers import conv_layer_names
 
     s = lm.summary()
     return ModelSummary(
@@ -96,7 +96,7 @@ def get_kernels(
     ws: Workspace = Depends(get_workspace),
 ) -> KernelsResponse:
     lm = ws.model(name)
-    from ...core.layers import conv_layer_names
+    from pellucid.core.model.layers import conv_layer_names
 
     view = kernel_view(lm.module, layer=layer)
     rgb = view.groups == 1 and view.weights.shape[1] == 3 and filter_index is None

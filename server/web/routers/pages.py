@@ -5,11 +5,11 @@ from __future__ import annotations
 from fastapi import APIRouter, Depends, Request
 from fastapi.responses import HTMLResponse
 
-from ... import __version__
-from ..deps import get_workspace
-from ..schemas import CAUTION
-from ..workspace import Workspace
-from .status import status_payload
+from pellucid import __version__
+from pellucid.web.deps import get_workspace
+from pellucid.web.routers.status import status_payload
+from pellucid.web.schemas import CAUTION
+from pellucid.web.workspace import Workspace
 
 router = APIRouter(tags=["pages"], include_in_schema=False)
 

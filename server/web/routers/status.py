@@ -8,9 +8,9 @@ import torch
 from fastapi import APIRouter, Depends
 from pydantic import BaseModel
 
-from ... import __version__
-from ..deps import get_workspace
-from ..workspace import Workspace
+from pellucid import __version__
+from pellucid.web.deps import get_workspace
+from pellucid.web.workspace import Workspace
 
 router = APIRouter(prefix="/api", tags=["status"])
 

@@ -45,7 +45,7 @@ from torch.utils._python_dispatch import TorchDispatchMode
 from torch.utils._pytree import tree_flatten
 from torch.utils.flop_counter import FlopCounterMode
 
-from server.core.errors import BadParameterError, UnsupportedLayerError
+from pellucid.core.errors import BadParameterError, UnsupportedLayerError
 
 __all__ = ["DRY_RUN_SEED", "LayerInfo", "LayerMap", "conv_layer_names", "is_conv_module", "layer_map"]
 

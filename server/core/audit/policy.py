@@ -51,7 +51,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .errors import SpecError
+from pellucid.core.errors import SpecError
 
 __all__ = [
     "CLASS_THRESHOLDS",
@@ -229,7 +229,7 @@ def _audit_table(table: Any, where: str) -> tuple[str | None, dict, str | None]:
             raise _unknown(key, _AUDIT_KEYS, where, "[audit]")
     method = table.get("method")
     if method is not None:
-        from .attribution import method_names
+        from pellucid.core.attribution import method_names
 
         if not isinstance(method, str) or method not in method_names():
             raise SpecError(f"{where}: audit.method must be one of {', '.join(method_names())}; received {method!r}")

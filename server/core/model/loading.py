@@ -19,8 +19,8 @@ from typing import Any
 import torch
 from torch import nn
 
-from .errors import ModelLoadError, ModelOutputError, PellucidError
-from .spec import ModelSpec
+from pellucid.core.errors import ModelLoadError, ModelOutputError, PellucidError
+from pellucid.core.model.spec import ModelSpec
 
 # Unpickling a full module executes arbitrary code from the file; only an explicit flag allows it.
 PICKLE_REFUSAL = (
@@ -66,7 +66,7 @@ class LoadedModel:
 
     def class_index(self, target: int | str) -> int:
         """Resolve a class given as index or label; raises BadParameterError when unknown."""
-        from .errors import BadParameterError
+        from pellucid.core.errors import BadParameterError
 
         if isinstance(target, str) and not target.lstrip("-").isdigit():
             if target in self.labels:

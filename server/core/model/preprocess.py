@@ -19,8 +19,8 @@ import numpy as np
 import torch
 from PIL import Image, ImageOps, UnidentifiedImageError
 
-from .errors import ImageDecodeError, ImageTooLargeError
-from .spec import ModelSpec
+from pellucid.core.errors import ImageDecodeError, ImageTooLargeError
+from pellucid.core.model.spec import ModelSpec
 
 # Defaults chosen for a local tool: large enough for camera photos, small enough that a crafted
 # "decompression bomb" cannot exhaust memory before we refuse it.

@@ -28,12 +28,12 @@ from matplotlib.backends.backend_pdf import PdfPages
 from matplotlib.figure import Figure
 from PIL import Image
 
-from .audit.measures import CORNERS, region_masks
-from .audit.runner import CAUTION
-from .audit.settings import AuditSettings
-from .errors import BadParameterError, StoreError
-from .policy import Policy, PolicyResult, evaluate_policy
-from .store import DONE, RunRecord, Store
+from pellucid.core.audit.measures import CORNERS, region_masks
+from pellucid.core.audit.policy import Policy, PolicyResult, evaluate_policy
+from pellucid.core.audit.runner import CAUTION
+from pellucid.core.audit.settings import AuditSettings
+from pellucid.core.audit.store import DONE, RunRecord, Store
+from pellucid.core.errors import BadParameterError, StoreError
 
 __all__ = ["MEASURE_SENTENCES", "ReportContent", "build_report", "write_report"]
 

@@ -7,7 +7,7 @@ corners differ by more than ``tolerance``; flat cells are filled by bilinear int
 their corners. The loop stops when no cell needs splitting. Areas where the map changes are thus
 evaluated at the full stride and smooth areas are not: a narrow peak that falls entirely inside
 a flat coarse cell can be missed, which is why the result is labelled approximate and
-:func:`server.core.occlusion.compare_to_exact` reports its error.
+:func:`pellucid.core.occlusion.engine.compare_to_exact` reports its error.
 
 The coarse-to-fine drill-down follows the approximate-inference idea of Nakandala, Kumar &
 Papakonstantinou, SIGMOD 2019; the grid schedule and the splitting rule are our own.
@@ -20,7 +20,7 @@ from collections.abc import Callable
 import numpy as np
 import torch
 
-from .progress import CancelToken, ProgressFn, step
+from pellucid.core.progress import CancelToken, ProgressFn, step
 
 __all__ = ["COARSE_STEP", "adaptive_grid"]
 

@@ -24,7 +24,7 @@ from matplotlib import colormaps  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from PIL import Image  # noqa: E402
 
-from .errors import BadParameterError  # noqa: E402
+from pellucid.core.errors import BadParameterError  # noqa: E402
 
 MAGNITUDE_CMAP = "cividis"
 SIGNED_CMAP = "PuOr_r"

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .errors import SpecError
+from pellucid.core.errors import SpecError
 
 SOURCE_KINDS = ("torchvision", "factory", "export", "torchscript", "pickled")
 OUTPUT_KINDS = ("softmax", "sigmoid")

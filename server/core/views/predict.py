@@ -10,7 +10,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from .errors import BadParameterError, ModelOutputError
+from pellucid.core.errors import BadParameterError, ModelOutputError
 
 
 @dataclass(frozen=True)

@@ -21,7 +21,7 @@ Engines (all exact except ``approximate``):
   benchmarks and as a reference.
 - ``batched``: occluded copies built with tensor ops and run in batches under ``inference_mode``.
 - ``incremental``: keeps every layer's output for the clean image and recomputes only the region
-  each patch can reach (see :mod:`server.core.incremental`).
+  each patch can reach (see :mod:`pellucid.core.occlusion.incremental`).
 - ``approximate``: coarse-to-fine adaptive stride, refining only where the map changes; its
   result says so (``engine == "approximate"``, ``evaluated`` marks the positions really run).
 
@@ -40,12 +40,12 @@ from typing import Any
 
 import numpy as np
 import torch
-import torch.nn.functional as F
 from torch import nn
 
-from .errors import BadParameterError
-from .predict import model_logits
-from .progress import CancelToken, ProgressFn, step
+from pellucid.core.errors import BadParameterError
+from pellucid.core.occlusion.positions import BASELINES, _as_count, _occluded_batch, make_baseline, occlusion_positions
+from pellucid.core.progress import CancelToken, ProgressFn, step
+from pellucid.core.views.predict import model_logits
 
 __all__ = [
     "BASELINES",
@@ -60,13 +60,8 @@ __all__ = [
 ]
 
 MAX_POSITIONS = 65_536
-BASELINES = ("mean", "zero", "blur")
 OUTPUTS = ("softmax", "sigmoid", "logit")
 METHODS = ("auto", "batched", "incremental", "naive", "approximate")
-
-# Blur baseline: a Gaussian with sigma = patch / 4 (at least 1 px), so detail at the scale of the
-# patch is removed while colour and coarse shading stay; our own choice, documented in the result.
-BLUR_SIGMA_PER_PATCH = 0.25
 
 # Default batch for the batched engine when the caller gives none: 16 images at 224×224 (more
 # pixels per image, fewer images). On the 2-core bench machine larger batches stopped paying once
@@ -142,31 +137,6 @@ class OcclusionResult:
 # validation
 
 
-def _as_count(value: Any, name: str, *, minimum: int = 1) -> int:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise BadParameterError(f"{name} must be a whole number of pixels; received {value!r}.")
-    if isinstance(value, float) or not isinstance(value, numbers.Integral):
-        fv = float(value)
-        if math.isnan(fv) or math.isinf(fv):
-            raise BadParameterError(f"{name} must be a finite whole number; received {value!r}.")
-        if not fv.is_integer():
-            raise BadParameterError(f"{name} must be a whole number of pixels; received {value!r}.")
-        value = int(fv)
-    value = int(value)
-    if value < minimum:
-        raise BadParameterError(f"{name} must be at least {minimum}; received {value}.")
-    return value
-
-
-def occlusion_positions(size: int, patch: int, stride: int) -> np.ndarray:
-    """Top-left coordinates along one axis: 0, stride, … plus a last one flush with the border."""
-    last = size - patch
-    pos = list(range(0, last + 1, stride))
-    if pos[-1] != last:
-        pos.append(last)
-    return np.asarray(pos, dtype=np.int64)
-
-
 def _check_input(x: Any) -> torch.Tensor:
     if not isinstance(x, torch.Tensor):
         raise BadParameterError(f"x must be a torch.Tensor of shape (1, C, H, W); received {type(x).__name__}.")
@@ -182,71 +152,6 @@ def _check_input(x: Any) -> torch.Tensor:
 
 
 # ---------------------------------------------------------------------------------------------
-# baselines
-
-
-def _gaussian_blur(x: torch.Tensor, sigma: float) -> torch.Tensor:
-    """Separable Gaussian blur of (1, C, H, W) with replicated borders."""
-    radius = max(1, math.ceil(3.0 * sigma))
-    t = torch.arange(-radius, radius + 1, dtype=x.dtype, device=x.device)
-    k = torch.exp(-0.5 * (t / sigma) ** 2)
-    k = k / k.sum()
-    c = x.shape[1]
-    kh = k.view(1, 1, -1, 1).repeat(c, 1, 1, 1)
-    kw = k.view(1, 1, 1, -1).repeat(c, 1, 1, 1)
-    y = F.pad(x, (0, 0, radius, radius), mode="replicate")
-    y = F.conv2d(y, kh, groups=c)
-    y = F.pad(y, (radius, radius, 0, 0), mode="replicate")
-    return F.conv2d(y, kw, groups=c)
-
-
-def make_baseline(
-    x: torch.Tensor, baseline: str | float | torch.Tensor, *, patch: int
-) -> tuple[torch.Tensor, str]:
-    """The (1, C, H, W) fill used inside the patch, and a short description of it.
-
-    ``"mean"``: per-channel mean of this image; ``"zero"``: 0 in normalised space (the dataset
-    mean when the spec normalises with it); a float: that constant in normalised space;
-    ``"blur"``: a Gaussian-blurred copy (sigma = patch/4, at least 1 px); a tensor broadcastable to
-    (1, C, H, W), e.g. a per-channel dataset mean of shape (C,) or (C, 1, 1).
-    """
-    _, c, h, w = x.shape
-    if isinstance(baseline, torch.Tensor):
-        b = baseline.detach().to(dtype=x.dtype, device=x.device)
-        if b.ndim == 1 and b.shape[0] == c:
-            b = b.view(1, c, 1, 1)
-        elif b.ndim == 3:
-            b = b.unsqueeze(0)
-        try:
-            b = b.expand(1, c, h, w).contiguous()
-        except RuntimeError:
-            raise BadParameterError(
-                f"a baseline tensor must broadcast to the input's (1, {c}, {h}, {w}); received shape "
-                f"{tuple(baseline.shape)}. Give (C,), (C, 1, 1) or (1, C, H, W)."
-            ) from None
-        if not bool(torch.isfinite(b).all()):
-            raise BadParameterError("baseline tensor contains NaN or infinite values.")
-        return b, f"tensor{tuple(baseline.shape)}"
-    if isinstance(baseline, bool):
-        raise BadParameterError(f"baseline must be one of {BASELINES}, a number or a tensor; received {baseline!r}.")
-    if isinstance(baseline, numbers.Real):
-        v = float(baseline)
-        if not math.isfinite(v):
-            raise BadParameterError(f"baseline constant must be finite; received {baseline!r}.")
-        return torch.full_like(x, v), f"constant {v:g}"
-    if baseline == "mean":
-        return x.mean(dim=(2, 3), keepdim=True).expand_as(x).contiguous(), "mean"
-    if baseline == "zero":
-        return torch.zeros_like(x), "zero"
-    if baseline == "blur":
-        sigma = max(1.0, BLUR_SIGMA_PER_PATCH * patch)
-        return _gaussian_blur(x, sigma), f"blur sigma={sigma:g}"
-    raise BadParameterError(
-        f"baseline must be one of {BASELINES}, a number or a tensor; received {baseline!r}."
-    )
-
-
-# ---------------------------------------------------------------------------------------------
 # scoring and occluded batches
 
 
@@ -257,20 +162,6 @@ def _scores(logits: torch.Tensor, target: int, output: str) -> torch.Tensor:
     if output == "sigmoid":
         return torch.sigmoid(logits[:, target].double())
     return logits[:, target].double()
-
-
-def _occluded_batch(
-    x: torch.Tensor, base: torch.Tensor, tops: torch.Tensor, lefts: torch.Tensor, patch: int
-) -> torch.Tensor:
-    """(B, C, H, W): copies of x with base pasted in the patch at each (top, left)."""
-    _, _, h, w = x.shape
-    ys = torch.arange(h, device=x.device)
-    xs = torch.arange(w, device=x.device)
-    rows = (ys[None, :] >= tops[:, None]) & (ys[None, :] < tops[:, None] + patch)
-    cols = (xs[None, :] >= lefts[:, None]) & (xs[None, :] < lefts[:, None] + patch)
-    mask = (rows[:, :, None] & cols[:, None, :]).unsqueeze(1)
-    # channels_last lets the CPU convolution kernels skip a layout change (faster in the bench)
-    return torch.where(mask, base, x).contiguous(memory_format=torch.channels_last)
 
 
 Evaluator = Callable[[torch.Tensor, torch.Tensor], torch.Tensor]
@@ -398,7 +289,7 @@ def occlusion_map(
         engine, evaluate, bs, details = _choose_engine(model, x, base, patch, method, batch_size,
                                                        (len(tops), len(lefts)))
         if method == "approximate":
-            from ._incremental_approximate import adaptive_grid
+            from pellucid.core.occlusion.approximate import adaptive_grid
 
             grid64, top_class, evaluated, n_eval = adaptive_grid(
                 evaluate, torch.as_tensor(tops), torch.as_tensor(lefts),
@@ -470,13 +361,13 @@ def _choose_engine(
         return "naive", naive, batch_size or 1, {}
 
     if method in ("auto", "incremental", "approximate"):
-        from .incremental import IncrementalOcclusion, NotIncremental
+        from pellucid.core.occlusion.incremental import IncrementalOcclusion, NotIncremental
 
         try:
             engine = IncrementalOcclusion(model, x, base, patch=patch)
         except NotIncremental as exc:
             if method == "incremental":
-                from .errors import UnsupportedLayerError
+                from pellucid.core.errors import UnsupportedLayerError
 
                 raise UnsupportedLayerError(
                     f"incremental occlusion cannot run on this model: {exc} Use method='batched'."

@@ -9,9 +9,9 @@ import numpy as np
 import torch
 from torch import nn
 
-from .errors import UnsupportedLayerError
-from .predict import Prediction, predict_logits
-from .probe import Probe
+from pellucid.core.errors import UnsupportedLayerError
+from pellucid.core.views.predict import Prediction, predict_logits
+from pellucid.core.views.probe import Probe
 
 
 @dataclass
@@ -37,7 +37,7 @@ class ActivationMaps:
             return np.argsort(-self.channel_mean, kind="stable")
         if by == "max":
             return np.argsort(-self.channel_max, kind="stable")
-        from .errors import BadParameterError
+        from pellucid.core.errors import BadParameterError
 
         raise BadParameterError(f"sort must be index, mean or max, got {by!r}")
 

@@ -39,7 +39,7 @@ from typing import Any, Self
 
 import numpy as np
 
-from .errors import NotFoundError, StoreError
+from pellucid.core.errors import NotFoundError, StoreError
 
 __all__ = [
     "DB_NAME",

@@ -11,7 +11,8 @@ from pathlib import Path
 
 from torch import nn
 
-from .errors import ModelLoadError
+from pellucid._resources import resource_dir
+from pellucid.core.errors import ModelLoadError
 
 
 def demo_models_dir() -> Path:
@@ -19,7 +20,7 @@ def demo_models_dir() -> Path:
     env = os.environ.get("PELLUCID_DEMO_MODELS")
     if env:
         return Path(env)
-    return Path(__file__).resolve().parents[2] / "demo_models"
+    return resource_dir("demo_models")
 
 
 def bundled_specs() -> dict[str, Path]:

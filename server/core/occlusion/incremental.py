@@ -44,7 +44,8 @@ import torch
 import torch.nn.functional as F
 from torch import fx, nn
 
-from ._fx_trace import trace_isolated
+from pellucid.core.occlusion._fx_trace import trace_isolated
+from pellucid.core.occlusion.positions import _occluded_batch, occlusion_positions
 
 __all__ = ["FULL_FRACTION", "WORTHWHILE_SPEEDUP", "IncrementalOcclusion", "NotIncremental"]
 
@@ -482,8 +483,6 @@ class IncrementalOcclusion:
 
     def _estimate(self) -> tuple[float, float, int]:
         """(estimated engine speedup in MACs, ideal conv speedup, total conv MACs) over the grid."""
-        from .occlusion import occlusion_positions
-
         tops = occlusion_positions(self.h, self.patch, 1)  # all positions at stride 1, subsampled
         lefts = occlusion_positions(self.w, self.patch, 1)
         tt, ll = np.meshgrid(tops[:: max(1, len(tops) // 24)], lefts[:: max(1, len(lefts) // 24)], indexing="ij")
@@ -637,8 +636,6 @@ class IncrementalOcclusion:
     # -- self-check ------------------------------------------------------------------------------
 
     def _self_check(self, model: nn.Module) -> None:
-        from .occlusion import _occluded_batch
-
         hp, wp = self.h - self.patch, self.w - self.patch
         tops = torch.tensor([hp // 2, 0, hp], dtype=torch.int64)
         lefts = torch.tensor([wp // 3, wp, 0], dtype=torch.int64)

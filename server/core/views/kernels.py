@@ -27,9 +27,9 @@ import numpy as np
 import torch
 from torch import nn
 
-from server.core import render
-from server.core.errors import BadParameterError, UnsupportedLayerError
-from server.core.layers import conv_layer_names, is_conv_module
+from pellucid.core.errors import BadParameterError, UnsupportedLayerError
+from pellucid.core.model.layers import conv_layer_names, is_conv_module
+from pellucid.core.views import render
 
 __all__ = [
     "DEAD_FRACTION",

@@ -16,7 +16,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from .errors import UnsupportedLayerError
+from pellucid.core.errors import UnsupportedLayerError
 
 
 def hookable(module: nn.Module) -> bool:

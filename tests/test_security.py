@@ -36,7 +36,7 @@ def test_token_required_off_loopback():
 
 
 def test_sign_in_link_works_once_and_sets_a_cookie():
-    app = create_app(Settings(host="0.0.0.0", token="s3cret-token"))
+    app = create_app(Settings(host="0.0.0.0", token="s3cret-token-0123456789"))
     link = app.state.guard.sign_in_link("http://testserver")
     with TestClient(app) as client:
         r = client.get(link.replace("http://testserver", ""), follow_redirects=False)

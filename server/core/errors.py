@@ -11,6 +11,8 @@
     ├── DataError                 an image folder or manifest that cannot be audited
     ├── StoreError                the data folder or its database cannot be used
     ├── NotFoundError             an image, job or run id that this server or store does not hold
+    ├── ConflictError             a request that clashes with the state of a run or job (resume twice)
+    ├── BusyError                 a queue or a per-client limit is full; try again after ``retry_after`` s
     └── Cancelled                 work stopped because its cancel token was set
 
 Each message says what was received, what was expected and, where it helps, what to do next.
@@ -62,6 +64,18 @@ class StoreError(PellucidError):
 
 class NotFoundError(PellucidError):
     pass
+
+
+class ConflictError(PellucidError):
+    pass
+
+
+class BusyError(PellucidError):
+    """Too much work queued (or running for one client); ``retry_after`` is a suggested wait in seconds."""
+
+    def __init__(self, message: str, *, retry_after: float = 1.0) -> None:
+        super().__init__(message)
+        self.retry_after = max(1, int(round(retry_after)))
 
 
 class Cancelled(PellucidError):

@@ -8,21 +8,29 @@ A job moves through explicit states::
 
 Any other transition is a programming error and raises RuntimeError. The manager keeps a bounded
 history so a long-running server does not grow without limit.
+
+Jobs run in *lanes*: each lane has its own thread pool, so a folder audit never holds a thread
+that an interactive map is waiting for. A lane bounds how many jobs may wait (beyond that,
+``submit`` raises :class:`BusyError` with a suggested wait) and how many jobs one client may
+have queued or running at once. A background lane's threads run at a lower scheduling priority
+(a higher nice value, Linux only), and so do the torch worker threads they start, so the
+interactive lane keeps the CPU when both are busy.
 """
 
 from __future__ import annotations
 
+import os
 import threading
 import time
 import traceback
 import uuid
-from collections import OrderedDict
-from collections.abc import Callable
+from collections import OrderedDict, deque
+from collections.abc import Callable, Iterable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
-from pellucid.core.errors import Cancelled, PellucidError
+from pellucid.core.errors import BusyError, Cancelled, PellucidError
 from pellucid.core.progress import CancelToken
 
 QUEUED, RUNNING, DONE, FAILED, CANCELLED = "queued", "running", "done", "failed", "cancelled"
@@ -35,6 +43,38 @@ _ALLOWED = {
 }
 
 JobFn = Callable[[Callable[[int, int], None], CancelToken], Any]
+INTERACTIVE, BACKGROUND = "interactive", "background"
+
+
+@dataclass(frozen=True)
+class Lane:
+    """A pool of ``workers`` threads with its own limits.
+
+    ``max_queued``: jobs that may wait for a thread (0: no limit). ``max_per_client``: jobs one
+    client may have queued or running (0: no limit). ``nice``: added niceness of the lane's
+    threads (0 keeps the process's priority).
+    """
+
+    name: str
+    workers: int
+    max_queued: int = 0
+    max_per_client: int = 0
+    nice: int = 0
+
+    def __post_init__(self) -> None:
+        if self.workers < 1 or self.max_queued < 0 or self.max_per_client < 0 or self.nice < 0:
+            raise ValueError(f"lane {self.name!r}: workers must be ≥ 1 and the limits ≥ 0, got {self}")
+
+
+def _lower_priority(nice: int) -> None:
+    """Raise this thread's nice value (Linux schedules threads one by one; threads it starts inherit it)."""
+    if nice <= 0 or not hasattr(os, "setpriority"):
+        return
+    try:
+        tid = threading.get_native_id()
+        os.setpriority(os.PRIO_PROCESS, tid, min(19, os.getpriority(os.PRIO_PROCESS, tid) + nice))
+    except OSError:  # not permitted or not supported here: run at the normal priority
+        pass
 
 
 @dataclass
@@ -52,6 +92,8 @@ class Job:
     error: str | None = None
     cancel_token: CancelToken = field(default_factory=CancelToken)
     meta: dict = field(default_factory=dict)
+    lane: str = INTERACTIVE
+    client: str | None = None
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
 
     def _move(self, state: str) -> None:
@@ -90,25 +132,75 @@ class Job:
             "elapsed": ((self.finished or time.time()) - self.started) if self.started else 0.0,
             "error": self.error,
             "meta": self.meta,
+            "lane": self.lane,
         }
 
 
 class JobManager:
-    """Runs jobs on a small thread pool (torch releases the GIL in its kernels)."""
+    """Runs jobs on small thread pools, one per lane (torch releases the GIL in its kernels).
 
-    def __init__(self, *, workers: int = 2, keep: int = 200) -> None:
-        self._pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="pellucid-job")
+    ``JobManager(workers=2)`` has one interactive lane without limits; a server passes
+    ``lanes=`` with its limits (see :class:`Lane`).
+    """
+
+    def __init__(self, *, workers: int = 2, keep: int = 200, lanes: Iterable[Lane] | None = None) -> None:
+        lanes = tuple(lanes) if lanes is not None else (Lane(INTERACTIVE, workers=workers),)
+        if not lanes or len({lane.name for lane in lanes}) != len(lanes):
+            raise ValueError(f"lanes need distinct names, got {[lane.name for lane in lanes]}")
+        self.lanes = {lane.name: lane for lane in lanes}
+        self._pools = {
+            lane.name: ThreadPoolExecutor(max_workers=lane.workers, thread_name_prefix=f"pellucid-{lane.name}",
+                                          initializer=_lower_priority, initargs=(lane.nice,))
+            for lane in lanes
+        }
         self._jobs: OrderedDict[str, Job] = OrderedDict()
         self._lock = threading.Lock()
         self._keep = keep
+        self._durations = {lane.name: deque(maxlen=20) for lane in lanes}
 
-    def submit(self, kind: str, fn: JobFn, *, description: str = "", meta: dict | None = None) -> Job:
-        job = Job(id=uuid.uuid4().hex[:12], kind=kind, description=description, meta=dict(meta or {}))
+    def submit(self, kind: str, fn: JobFn, *, description: str = "", meta: dict | None = None,
+               lane: str = INTERACTIVE, client: str | None = None) -> Job:
+        """Queue ``fn`` on ``lane``; raises BusyError when the lane's queue or the client's share is full."""
+        if lane not in self.lanes:
+            raise ValueError(f"no job lane {lane!r}; lanes: {', '.join(self.lanes)}")
+        limits = self.lanes[lane]
+        job = Job(id=uuid.uuid4().hex[:12], kind=kind, description=description, meta=dict(meta or {}),
+                  lane=lane, client=client)
         with self._lock:
+            active = [j for j in self._jobs.values() if j.lane == lane and not j.finished_state]
+            queued = sum(1 for j in active if j.state == QUEUED)
+            if limits.max_queued and queued >= limits.max_queued:
+                raise BusyError(
+                    f"{queued} {lane} job(s) are already waiting, the most this server queues; try again "
+                    f"in a few seconds", retry_after=self._retry_after(lane, queued))
+            if limits.max_per_client and client is not None:
+                mine = sum(1 for j in active if j.client == client)
+                if mine >= limits.max_per_client:
+                    raise BusyError(
+                        f"you already have {mine} {lane} job(s) queued or running, the most one client may have "
+                        f"at once; wait for one to finish (or cancel one) and try again",
+                        retry_after=self._retry_after(lane, 0))
             self._jobs[job.id] = job
             self._trim()
-        self._pool.submit(self._run, job, fn)
+        self._pools[lane].submit(self._run, job, fn)
         return job
+
+    def _retry_after(self, lane: str, queued: int) -> float:
+        """A suggested wait: recent job durations times the jobs ahead, per worker (1 s … 2 min)."""
+        recent = self._durations[lane]
+        typical = sum(recent) / len(recent) if recent else 1.0
+        return min(120.0, max(1.0, typical * (queued + 1) / self.lanes[lane].workers))
+
+    def counts(self) -> dict[str, dict[str, int]]:
+        """Per lane: jobs queued and running now, and the lane's limits."""
+        with self._lock:
+            jobs = list(self._jobs.values())
+        return {
+            name: {"queued": sum(1 for j in jobs if j.lane == name and j.state == QUEUED),
+                   "running": sum(1 for j in jobs if j.lane == name and j.state == RUNNING),
+                   "workers": lane.workers, "max_queued": lane.max_queued, "max_per_client": lane.max_per_client}
+            for name, lane in self.lanes.items()
+        }
 
     def _trim(self) -> None:
         while len(self._jobs) > self._keep:
@@ -151,6 +243,8 @@ class JobManager:
                     job._move(DONE)
         finally:
             job.finished = time.time()
+            if job.started is not None:
+                self._durations[job.lane].append(job.finished - job.started)
 
     def get(self, job_id: str) -> Job | None:
         with self._lock:
@@ -186,4 +280,5 @@ class JobManager:
     def shutdown(self) -> None:
         for job in self.list():
             job.cancel_token.cancel()
-        self._pool.shutdown(wait=True, cancel_futures=True)
+        for pool in self._pools.values():
+            pool.shutdown(wait=True, cancel_futures=True)

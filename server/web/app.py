@@ -12,7 +12,7 @@ from fastapi.templating import Jinja2Templates
 from pellucid import __version__
 from pellucid._resources import resource_dir
 from pellucid.web.errors import install_error_handlers
-from pellucid.web.security import AccessGuard, SecurityMiddleware, is_loopback
+from pellucid.web.security import AccessGuard, Exposure, SecurityMiddleware, is_loopback
 from pellucid.web.settings import Settings
 from pellucid.web.workspace import Workspace
 
@@ -48,7 +48,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     # Off loopback every request needs the token; on loopback only when one was given explicitly.
     guard = AccessGuard.create(settings.token) if (settings.token or not is_loopback(settings.host)) else None
     app.state.guard = guard
-    app.add_middleware(SecurityMiddleware, guard=guard)
+    from pellucid.web.routers.images import UPLOAD_PATH
+
+    exposure = Exposure.for_server(guard=guard, host=settings.host, extra_hosts=settings.allowed_hosts,
+                                   max_body_bytes=settings.max_body_bytes, upload_paths=(UPLOAD_PATH,))
+    app.state.exposure = exposure
+    app.add_middleware(SecurityMiddleware, exposure=exposure)
 
     from pellucid.web.routers import docs, images, inspect, jobs, models, pages, status
 

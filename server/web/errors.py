@@ -24,6 +24,8 @@ _STATUS: list[tuple[type[E.PellucidError], int]] = [
     (E.DataError, 422),
     (E.StoreError, 503),
     (E.NotFoundError, 404),
+    (E.ConflictError, 409),
+    (E.BusyError, 429),
     (E.Cancelled, 409),
 ]
 
@@ -80,20 +82,41 @@ def _document_error_bodies(app: FastAPI) -> None:
     app.openapi = openapi  # type: ignore[method-assign]
 
 
+def _allowed_methods(request: Request) -> str:
+    """Every method some route offers on this path (Starlette names only the first route's)."""
+    from starlette.routing import Match
+
+    methods: set[str] = set()
+    for route in request.app.router.routes:
+        match, _ = route.matches(request.scope)
+        if match != Match.NONE and getattr(route, "methods", None):
+            methods |= set(route.methods)
+    return ", ".join(sorted(methods))
+
+
 def install_error_handlers(app: FastAPI) -> None:
     _document_error_bodies(app)
 
     @app.exception_handler(E.PellucidError)
     async def _pellucid(_request: Request, exc: E.PellucidError) -> JSONResponse:
-        return JSONResponse({"detail": str(exc), "error": type(exc).__name__}, status_code=status_for(exc))
+        headers = {"Retry-After": str(exc.retry_after)} if isinstance(exc, E.BusyError) else None
+        return JSONResponse({"detail": str(exc), "error": type(exc).__name__}, status_code=status_for(exc),
+                            headers=headers)
 
     @app.exception_handler(RequestValidationError)
     async def _validation(_request: Request, exc: RequestValidationError) -> JSONResponse:
         return JSONResponse({"detail": _plain_validation_message(exc), "error": "ValidationError"}, status_code=422)
 
     @app.exception_handler(StarletteHTTPException)
-    async def _http(_request: Request, exc: StarletteHTTPException) -> JSONResponse:
-        return JSONResponse({"detail": str(exc.detail), "error": "HTTPError"}, status_code=exc.status_code)
+    async def _http(request: Request, exc: StarletteHTTPException) -> JSONResponse:
+        # Keep the exception's own headers: a 405 must say which methods the path allows (RFC 9110 §15.5.6).
+        detail, headers = str(exc.detail), dict(exc.headers or {})
+        if exc.status_code == 405:
+            allowed = _allowed_methods(request) or headers.get("Allow", "")
+            headers["Allow"] = allowed
+            detail = f"{request.method} is not allowed on {request.url.path}; use {allowed}"
+        return JSONResponse({"detail": detail, "error": "HTTPError"}, status_code=exc.status_code,
+                            headers=headers or None)
 
     @app.exception_handler(Exception)
     async def _unexpected(_request: Request, exc: Exception) -> JSONResponse:

@@ -13,13 +13,15 @@ from typing import Any
 import numpy as np
 
 from pellucid.core.cache import ResultCache
-from pellucid.core.errors import BadParameterError, ModelLoadError, NotFoundError, PellucidError
-from pellucid.core.jobs import JobManager
+from pellucid.core.confine import resolve_inside as _confined
+from pellucid.core.errors import ModelLoadError, NotFoundError, PellucidError
+from pellucid.core.jobs import BACKGROUND, INTERACTIVE, JobManager, Lane
 from pellucid.core.model.bundled import bundled_specs
 from pellucid.core.model.layers import LayerMap, layer_map
 from pellucid.core.model.loading import LoadedModel, load_model
 from pellucid.core.model.preprocess import IntakeImage, PreparedInput, prepare
 from pellucid.core.model.spec import ModelSpec
+from pellucid.web.image_cache import ByteBudgetLru, ImageCache, prepared_bytes
 from pellucid.web.settings import Settings
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".gif", ".bmp", ".tif", ".tiff", ".webp")
@@ -72,32 +74,8 @@ class _Lru:
 
 
 def resolve_inside(root: Path, relative: str) -> Path:
-    """``relative`` resolved under ``root``, refusing anything that would leave it.
-
-    Refuses absolute paths, ``..`` parts, and symlinks (anywhere on the way) that resolve outside
-    the root. Raises BadParameterError with a plain message; NotFoundError when nothing is there.
-    """
-    rel = (relative or "").replace("\\", "/").strip()
-    if rel.startswith("/") or (len(rel) > 1 and rel[1] == ":"):
-        raise BadParameterError(
-            f"folder paths are relative to the image folder; received the absolute path {relative!r}"
-        )
-    parts = [p for p in rel.split("/") if p not in ("", ".")]
-    if any(p == ".." for p in parts):
-        raise BadParameterError(f"'..' is not allowed in folder paths (received {relative!r}); "
-                                "browsing stays inside the image folder")
-    if any("\x00" in p for p in parts):
-        raise BadParameterError("folder paths cannot contain NUL characters")
-    base = root.resolve()
-    target = base.joinpath(*parts)
-    resolved = target.resolve()
-    if resolved != base and base not in resolved.parents:
-        raise BadParameterError(
-            f"{relative!r} leads outside the image folder (through a symbolic link); it is refused"
-        )
-    if not resolved.exists():
-        raise NotFoundError(f"nothing called {relative!r} in the image folder")
-    return resolved
+    """``relative`` under ``root`` by the one confinement rule (``core/confine.py``)."""
+    return _confined(root, relative, what="the image folder")
 
 
 class Workspace:
@@ -107,11 +85,19 @@ class Workspace:
         self.spec_errors: dict[str, str] = {}
         self._models: dict[str, LoadedModel] = {}
         self._model_lock = threading.Lock()
-        self._images: OrderedDict[str, IntakeImage] = OrderedDict()
-        self._image_lock = threading.Lock()
-        self.jobs = JobManager(workers=settings.job_workers)
+        self.image_cache = ImageCache(budget_bytes=settings.max_image_memory, max_images=settings.max_images)
+        # Decoding holds a whole picture in memory before the budget can judge it: a few at a time.
+        self.decode_slots = threading.BoundedSemaphore(2)
+        self.jobs = JobManager(lanes=(
+            Lane(INTERACTIVE, workers=settings.job_workers, max_queued=settings.max_queued_jobs,
+                 max_per_client=settings.max_jobs_per_client),
+            # Audits run beside interactive maps, never in front of them, and at a lower priority.
+            Lane(BACKGROUND, workers=settings.audit_workers, max_queued=settings.max_queued_audits, nice=10),
+        ))
         self.cache = ResultCache(max_entries=settings.max_cached_results)
-        self._prepared = _Lru(limit=max(8, settings.max_images))
+        self._prepared = ByteBudgetLru(budget_bytes=settings.max_prepared_memory,
+                                       max_entries=max(8, settings.max_images), size=prepared_bytes,
+                                       what="prepared input")
         self._layer_maps = _Lru(limit=16)
         self._collect_specs()
 
@@ -155,20 +141,18 @@ class Workspace:
             return dict(self._models)
 
     def add_image(self, image: IntakeImage) -> str:
-        with self._image_lock:
-            self._images[image.sha256] = image
-            self._images.move_to_end(image.sha256)
-            while len(self._images) > self.settings.max_images:
-                self._images.popitem(last=False)
+        """Keep a decoded image within the memory budget (raises ImageTooLargeError when it alone is over)."""
+        evicted = self.image_cache.add(image)
+        if evicted:
+            gone = set(evicted)
+            self._prepared.discard_where(lambda key: key[2] in gone)
         return image.sha256
 
     def images(self) -> list[IntakeImage]:
-        with self._image_lock:
-            return list(reversed(self._images.values()))
+        return self.image_cache.list()
 
     def image(self, sha256: str) -> IntakeImage:
-        with self._image_lock:
-            img = self._images.get(sha256)
+        img = self.image_cache.get(sha256)
         if img is None:
             raise NotFoundError(
                 f"no image with id {sha256[:16]!r} on this server (it may have expired); upload it again"

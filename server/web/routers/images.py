@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import unicodedata
 from pathlib import Path
 
 import numpy as np
@@ -9,6 +10,7 @@ from fastapi import APIRouter, Depends, Query, Request
 from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import UploadFile
 
+from pellucid.core.confine import is_inside
 from pellucid.core.errors import BadParameterError, ImageDecodeError, ImageTooLargeError, NotFoundError
 from pellucid.core.model.preprocess import IntakeImage, read_image
 from pellucid.core.views import render
@@ -32,6 +34,26 @@ router = APIRouter(prefix="/api", tags=["images"])
 # Room for the multipart boundary and headers around the file itself.
 _MULTIPART_SLACK = 64 * 1024
 _MAX_LISTING = 500
+_MAX_NAME = 120
+UPLOAD_PATH = "/api/images"  # the one multipart route; the security middleware leaves its body to it
+
+
+def clean_name(raw: str | None) -> str:
+    """A display name from a client-given file name: the last part after '/' or '\\', without
+    control characters (NUL included), at most 120 characters; 'upload' when nothing is left."""
+    text = (raw or "").replace("\\", "/").rsplit("/", 1)[-1]
+    text = "".join(c for c in text if unicodedata.category(c)[0] != "C").strip()
+    if text in ("", ".", ".."):
+        return "upload"
+    if len(text) > _MAX_NAME:
+        stem, dot, suffix = text.rpartition(".")
+        text = (stem[: _MAX_NAME - len(suffix) - 1] + dot + suffix) if dot and len(suffix) <= 8 else text[:_MAX_NAME]
+    return text
+
+
+def _decode(ws: Workspace, settings: Settings, source, *, name: str | None = None) -> IntakeImage:
+    with ws.decode_slots:
+        return read_image(source, name=name, max_bytes=settings.max_upload_bytes, max_pixels=settings.max_pixels)
 
 
 def image_info(img: IntakeImage) -> ImageInfo:
@@ -93,12 +115,12 @@ async def upload_image(
         if not isinstance(upload, UploadFile):
             raise ImageDecodeError("the upload has no file in a field named 'file'; choose an image and send it again")
         data = await upload.read()
-        name = Path(upload.filename or "upload").name or "upload"
+        name = clean_name(upload.filename)
     finally:
         await form.close()
     if len(data) > limit:
         raise _too_big(len(data), limit)
-    img = await run_in_threadpool(read_image, data, name=name, max_bytes=limit, max_pixels=settings.max_pixels)
+    img = await run_in_threadpool(_decode, ws, settings, data, name=name)
     ws.add_image(img)
     return image_info(img)
 
@@ -173,13 +195,15 @@ def open_from_folder(body: OpenFromFolder, ws: Workspace = Depends(get_workspace
     where = resolve_inside(_root(settings), body.path)
     if not where.is_file():
         raise BadParameterError(f"{body.path!r} is a folder, not an image")
-    img = read_image(where, max_bytes=settings.max_upload_bytes, max_pixels=settings.max_pixels)
+    img = _decode(ws, settings, where)
     ws.add_image(img)
     return image_info(img)
 
 
 def _sample_files(folder: Path) -> list[Path]:
-    return sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in IMAGE_SUFFIXES)
+    """Image files of a samples folder, none that a symbolic link leads out of it."""
+    return sorted(p for p in folder.iterdir()
+                  if p.suffix.lower() in IMAGE_SUFFIXES and is_inside(folder, p) and p.is_file())
 
 
 @router.get("/samples", response_model=SampleList, summary="Demo images shipped beside a model's spec")
@@ -190,7 +214,7 @@ def list_samples(model: str | None = Query(None), ws: Workspace = Depends(get_wo
     samples = []
     for path in (_sample_files(folder) if folder else [])[:48]:
         try:
-            img = read_image(path, max_bytes=settings.max_upload_bytes, max_pixels=settings.max_pixels)
+            img = _decode(ws, settings, path)
         except ImageDecodeError:
             continue
         thumb = img.pil.convert("RGB")
@@ -208,6 +232,6 @@ def open_sample(body: OpenSample, ws: Workspace = Depends(get_workspace),
     where = resolve_inside(folder, body.name)
     if not where.is_file():
         raise BadParameterError(f"{body.name!r} is not an image file")
-    img = read_image(where, max_bytes=settings.max_upload_bytes, max_pixels=settings.max_pixels)
+    img = _decode(ws, settings, where)
     ws.add_image(img)
     return image_info(img)

@@ -38,15 +38,8 @@ def test_rgb_png_is_normalised_exactly():
     assert np.array_equal(p.display, arr) and p.notes == []
 
 
-def test_exif_orientation_is_honoured():
-    # A 4×2 image marked "rotate 90° CW to view" (orientation 6) must come out 2×4.
-    # Source: EXIF 2.3 (JEITA CP-3451C), tag 0x0112 Orientation, value 6.
-    img = Image.new("RGB", (4, 2), "red")
-    exif = Image.Exif()
-    exif[0x0112] = 6
-    out = read_image(png_bytes(img, "JPEG", exif=exif.tobytes()))
-    assert out.pil.size == (2, 4)
-    assert any("EXIF orientation (6)" in n for n in out.notes)
+# EXIF orientation is checked pixel for pixel against Pillow and the EXIF table in
+# test_outside_preprocess.py.
 
 
 @pytest.mark.parametrize(

@@ -5,6 +5,27 @@ records every conversion it made (EXIF rotation, dropped alpha, 16-bit scaling, 
 animation) as a plain note, because a silent conversion is a common source of wrong maps.
 :func:`prepare` then applies the spec's preprocessing exactly, and keeps the resized/cropped
 picture so the user sees what the model saw.
+
+What :func:`prepare` reproduces, pixel for pixel, is torchvision's classic evaluation pipeline on a
+Pillow image (``transforms`` v1; v2 takes the same path for Pillow input), because that is how most
+classifiers are trained and evaluated:
+
+- ``Resize(side, interpolation)`` for ``resize = side``: the shorter side becomes ``side`` and the
+  longer one ``int(side * long / short)``, truncated, not rounded (torchvision
+  ``transforms/functional.py``, ``_compute_resized_output_size``); a 451×300 photo with side 256
+  becomes 384×256. ``resize = [h, w]`` is ``Resize((h, w))``. On Pillow images torchvision calls
+  Pillow's own ``resize`` with the mapped filter (nearest, bilinear, bicubic), so antialiasing is
+  always on; so does Pellucid.
+- ``CenterCrop((h, w))``: offsets ``int(round((size - crop) / 2))`` and, when the image is smaller
+  than the crop, zero padding of ``(crop - size) // 2`` before (left/top) and the rest after.
+- ``ToTensor()`` then ``Normalize(mean, std)``: uint8 / 255 in float32, then (x − mean) / std.
+
+Not reproduced: resizing a *tensor* (torchvision's tensor bicubic kernel and tensor "nearest" differ
+from Pillow's; bilinear with ``antialias=True`` stays within one grey level of it), and intake's own
+choices made before the pipeline: EXIF orientation applied (as Pillow's ``ImageOps.exif_transpose``),
+transparent pixels composited onto white (``convert("RGB")`` would drop alpha instead), 16-bit
+greys scaled to 8 bits, grey repeated into three channels. Pellucid adds one step torchvision does not:
+if the spec's resize and crop do not end at the model's input size, a final resize reaches it, with a note.
 """
 
 from __future__ import annotations
@@ -193,10 +214,11 @@ def resize_and_crop(img: Image.Image, spec: ModelSpec, notes: list[str]) -> Imag
     if pre.resize is not None:
         if len(pre.resize) == 1:
             side = pre.resize[0]
+            # torchvision truncates the long side (int, not round): 451×300 → 384×256, not 385×256.
             if w <= h:
-                new_w, new_h = side, max(1, round(h * side / w))
+                new_w, new_h = side, int(side * h / w)
             else:
-                new_w, new_h = max(1, round(w * side / h)), side
+                new_w, new_h = int(side * w / h), side
         else:
             new_h, new_w = pre.resize
             if abs((new_w / new_h) - (w / h)) > 0.01:

@@ -58,8 +58,11 @@ def tensor_from_display(model: LoadedModel, display: np.ndarray) -> torch.Tensor
     return torch.from_numpy(((arr - mean) / std).transpose(2, 0, 1).copy()).unsqueeze(0)
 
 
-def paste(display: np.ndarray, patch: np.ndarray, at: tuple[int, int]) -> np.ndarray:
-    """A copy of ``display`` (H, W, 3) with ``patch`` (h, w, 3) pasted with its top-left at (x, y), clipped."""
+def paste(display: np.ndarray, patch: np.ndarray, at: tuple[int, int], mask: np.ndarray | None = None) -> np.ndarray:
+    """A copy of ``display`` (H, W, 3) with ``patch`` (h, w, 3) pasted with its top-left at (x, y), clipped.
+
+    ``mask`` (h, w) bool: paste only those pixels of the patch.
+    """
     out = display.copy()
     h, w = display.shape[:2]
     x, y = int(at[0]), int(at[1])
@@ -70,7 +73,12 @@ def paste(display: np.ndarray, patch: np.ndarray, at: tuple[int, int]) -> np.nda
             f"a {pw}×{ph} patch at ({x}, {y}) lies entirely outside the {w}×{h} model input; give a location "
             "inside it"
         )
-    out[y0:y1, x0:x1] = patch[y0 - y:y1 - y, x0 - x:x1 - x]
+    piece = patch[y0 - y:y1 - y, x0 - x:x1 - x]
+    if mask is None:
+        out[y0:y1, x0:x1] = piece
+    else:
+        keep = mask[y0 - y:y1 - y, x0 - x:x1 - x]
+        out[y0:y1, x0:x1][keep] = piece[keep]
     return out
 
 
@@ -168,7 +176,7 @@ def injection_test(model: LoadedModel, items: list[dict], spec: InjectionSpec, *
         if display is None:
             failed.append({"rel": item["rel"], "reason": info})
             continue
-        pasted = paste(display, spec.patch, spec.at)
+        pasted = paste(display, spec.patch, spec.at, spec.mask)
         batch_b.append(tensor_from_display(model, display))
         batch_a.append(tensor_from_display(model, pasted))
         kept.append(item)
@@ -201,7 +209,7 @@ def injection_test(model: LoadedModel, items: list[dict], spec: InjectionSpec, *
             "flipped": bool(flips[n]),
         })
         display = prepare(model.spec, read_image(Path(kept[n]["path"]))).display
-        pics[rel] = (display, paste(display, spec.patch, spec.at))
+        pics[rel] = (display, paste(display, spec.patch, spec.at, spec.mask))
     n_el = int(eligible.sum())
     return InjectionResult(
         spec=spec.to_dict(), suspect_index=suspect, tested=len(kept), eligible=n_el, flips=int(flips.sum()),

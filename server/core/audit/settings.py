@@ -100,6 +100,8 @@ class InjectionSpec:
     ``patch`` is (h, w, 3) uint8; ``at`` is its top-left corner (x, y) in the model's input pixels
     (the picture after the spec's resize and crop). ``source`` says where the patch came from.
     ``limit`` caps the number of images tested (None: all images of the other classes).
+    ``mask`` (h, w) bool, optional: only these pixels of the patch are pasted (a ring, a blob),
+    the others keep the receiving image's own pixels.
     """
 
     patch: np.ndarray
@@ -107,6 +109,7 @@ class InjectionSpec:
     at: tuple[int, int]
     source: str = "given"
     limit: int | None = None
+    mask: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         p = self.patch
@@ -119,16 +122,23 @@ class InjectionSpec:
         if self.limit is not None and (not isinstance(self.limit, int) or self.limit < 1):
             raise BadParameterError("the injection image limit must be a positive whole number; "
                                     f"received {self.limit!r}")
+        m = self.mask
+        if m is not None and (not isinstance(m, np.ndarray) or m.shape != p.shape[:2] or not m.any()):
+            raise BadParameterError(f"the patch mask must be a non-empty (h, w) = {p.shape[:2]} array of booleans; "
+                                    f"received {getattr(m, 'shape', type(m).__name__)}")
 
     @property
     def patch_sha256(self) -> str:
-        return hashlib.sha256(np.ascontiguousarray(self.patch).tobytes() + repr(self.patch.shape).encode()).hexdigest()
+        extra = b"" if self.mask is None else np.packbits(self.mask.astype(bool)).tobytes()
+        return hashlib.sha256(np.ascontiguousarray(self.patch).tobytes() + repr(self.patch.shape).encode()
+                              + extra).hexdigest()
 
     def to_dict(self) -> dict:
         h, w = self.patch.shape[:2]
         return {"patch_sha256": self.patch_sha256, "patch_size": [int(w), int(h)],
                 "suspect_class": self.suspect_class, "at": [int(self.at[0]), int(self.at[1])],
-                "source": self.source, "limit": self.limit}
+                "source": self.source, "limit": self.limit,
+                "masked": self.mask is not None, "mask_pixels": None if self.mask is None else int(self.mask.sum())}
 
 
 @dataclass(frozen=True)

@@ -249,9 +249,131 @@ def test_gradcam_unknown_layer_and_model_without_conv(cnn, image):
     with pytest.raises(UnsupportedLayerError, match="no layer named 'conv9'"):
         compute_attribution("gradcam", cnn, image, params={"layer": "conv9"})
     lin = LinearModel(torch.ones(1, 3, 4, 4))
-    with pytest.raises(UnsupportedLayerError, match=r"no nn.Conv2d"):
+    with pytest.raises(UnsupportedLayerError, match=r"no module of this model produces a 4-D"):
         compute_attribution("gradcam", lin, torch.ones(1, 3, 4, 4))
     assert conv_like_layers(cnn, image) == ["conv1", "relu1", "conv2", "pool"]
+
+
+def _cam_check(amap, feature: torch.Tensor, weight: torch.Tensor) -> None:
+    """Grad-CAM's low-resolution map against ReLU(CAM)/Z computed here from the feature map and fc weights.
+
+    Source: Selvaraju et al., "Grad-CAM: Visual Explanations from Deep Networks via Gradient-based
+    Localization", ICCV 2017, §3.1 — for global average pooling followed by a linear layer,
+    Grad-CAM = ReLU(CAM)/Z; CAM: Zhou et al., "Learning Deep Features for Discriminative
+    Localization", CVPR 2016, Eq. for M_c = Σ_k w_k^c f_k(x, y).
+    """
+    f = feature.detach().double()[0]  # (C, h, w)
+    weight = weight.detach().double()
+    cam = torch.zeros(f.shape[1:], dtype=torch.float64)
+    for k in range(f.shape[0]):  # the CAM sum written out, channel by channel
+        cam += float(weight[k]) * f[k]
+    expected = torch.relu(cam) / (f.shape[1] * f.shape[2])
+    assert float(expected.max()) > 0, "pick a target with positive evidence"
+    got = torch.from_numpy(amap.raw).double()
+    assert got.shape == expected.shape
+    scale = float(expected.max())
+    assert float((got / scale - expected / scale).abs().max()) <= 1e-4
+    assert int(got.argmax()) == int(expected.argmax())  # the peak cell is the same one
+
+
+def _resnet18() -> nn.Module:
+    import torchvision
+
+    torch.manual_seed(0)
+    return torchvision.models.resnet18(weights=None).eval()
+
+
+def test_gradcam_default_layer_equals_cam_on_resnet18():
+    # Source: Selvaraju et al., ICCV 2017, §3.1 (Grad-CAM = ReLU(CAM)/Z at the map feeding GAP);
+    # torchvision's ResNet-18 feeds layer4's output to avgpool, then fc (He et al., CVPR 2016).
+    net = _resnet18()
+    x = torch.randn(1, 3, 224, 224, generator=torch.Generator().manual_seed(5))
+    with torch.no_grad():
+        logits = net(x)
+    target = int(logits[0].argmax())
+    amap = compute_attribution("gradcam", net, x, target=target)
+    assert amap.params["layer"] == "layer4.1"  # the last block: after its residual sum and ReLU
+    assert amap.extras["layer_shape"] == [512, 7, 7]
+    seen = {}
+    handle = net.avgpool.register_forward_pre_hook(lambda _m, args: seen.update(f=args[0].clone()))
+    with torch.no_grad():
+        net(x)
+    handle.remove()
+    _cam_check(amap, seen["f"], net.fc.weight[target])
+
+
+def test_gradcam_default_layer_is_not_the_last_conv():
+    # The old default (the last nn.Conv2d, before batch norm, ReLU and the skip sum) is not CAM:
+    # the same check must fail there, so the test above cannot pass by accident.
+    net = _resnet18()
+    x = torch.randn(1, 3, 224, 224, generator=torch.Generator().manual_seed(5))
+    with torch.no_grad():
+        target = int(net(x)[0].argmax())
+    seen = {}
+    handle = net.avgpool.register_forward_pre_hook(lambda _m, args: seen.update(f=args[0].clone()))
+    with torch.no_grad():
+        net(x)
+    handle.remove()
+    old = compute_attribution("gradcam", net, x, target=target, params={"layer": "layer4.1.conv2"})
+    with pytest.raises(AssertionError):
+        _cam_check(old, seen["f"], net.fc.weight[target])
+
+
+def test_gradcam_default_layer_on_a_torch_export_model():
+    # torch.export programs turned back into modules keep the submodule names; the default layer
+    # is found from the recorded graph, so it is the same layer and the same map as the eager model.
+    net = _resnet18()
+    x = torch.randn(1, 3, 112, 112, generator=torch.Generator().manual_seed(6))
+    exported = torch.export.unflatten(torch.export.export(net, (x,)))
+    eager = compute_attribution("gradcam", net, x)
+    other = compute_attribution("gradcam", exported, x, target=eager.target)
+    assert other.params["layer"] == eager.params["layer"] == "layer4.1"
+    np.testing.assert_allclose(other.map, eager.map, rtol=1e-4, atol=1e-6)
+
+
+@pytest.mark.imagenet
+def test_gradcam_default_layer_equals_cam_on_efficientnet_lite0():
+    # Source: Selvaraju et al., ICCV 2017, §3.1; the photo is scikit-image's bundled "chelsea" (a cat).
+    pytest.importorskip("efficientnet_lite_pytorch", reason="needs the optional imagenet extra")
+    skimage_data = pytest.importorskip("skimage.data")
+    from pellucid.core.model.bundled import bundled_spec_path
+    from pellucid.core.model.loading import load_model
+    from pellucid.core.model.preprocess import prepare, read_image
+
+    lm = load_model(bundled_spec_path("efficientnet-lite0"))
+    net = lm.module
+    from PIL import Image
+
+    buf = __import__("io").BytesIO()
+    Image.fromarray(skimage_data.chelsea()).save(buf, format="PNG")
+    x = prepare(lm.spec, read_image(buf.getvalue())).tensor
+    amap = compute_attribution("gradcam", net, x)
+    # EfficientNet-Lite's head: conv_head → bn → ReLU6 → global average pooling → fc.
+    assert amap.params["layer"] == "_avg_pooling:input"
+    with torch.no_grad():
+        feature = net.extract_features(x)
+    _cam_check(amap, feature, net._fc.weight[amap.target])
+
+
+def test_gradcam_layer_refused_up_front_with_the_valid_layers(cnn):
+    from pellucid.core.attribution import check_request
+
+    listing = "valid layers: conv1, relu1, conv2, pool"
+    with pytest.raises(UnsupportedLayerError, match=r"layer 'fc' gives \(1, 3\).*" + listing):
+        check_request("gradcam", cnn, (3, 12, 12), {"layer": "fc"})
+    with pytest.raises(UnsupportedLayerError, match="no layer named 'head'"):
+        check_request("gradcam", cnn, (3, 12, 12), {"layer": "head"})
+    assert check_request("gradcam", cnn, (3, 12, 12), {"layer": "relu1"})["layer"] == "relu1"
+    assert check_request("gradcam", cnn, (3, 12, 12), {})["layer"] is None
+    assert all(not m._forward_hooks and not m._forward_pre_hooks for m in cnn.modules())
+
+
+def test_gradcam_at_the_input_of_a_module(cnn, image):
+    # "NAME:input" hooks the module's first input: the pooling's input is conv2's output here.
+    a = compute_attribution("gradcam", cnn, image, target=0, params={"layer": "pool:input"})
+    b = compute_attribution("gradcam", cnn, image, target=0, params={"layer": "conv2"})
+    assert a.params["layer"] == "pool:input"
+    np.testing.assert_array_equal(a.raw, b.raw)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -486,7 +608,7 @@ def test_public_surface_is_pinned():
 
     assert sorted(attribution.__all__) == sorted([
         "AttributionMap", "Context", "Curve", "FaithfulnessResult", "Method", "Normalization", "Param",
-        "ParamSchema", "SanityResult", "SanityStep", "UnknownMethodError", "compute_attribution",
+        "ParamSchema", "SanityResult", "SanityStep", "UnknownMethodError", "check_request", "compute_attribution",
         "conv_like_layers", "faithfulness", "get_method", "list_methods", "method_names", "rank_methods",
         "register", "sanity_check",
     ])

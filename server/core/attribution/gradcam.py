@@ -1,10 +1,20 @@
-"""Grad-CAM at any conv-like layer.
+"""Grad-CAM at the feature map that feeds the classifier head, or at any conv-like layer.
 
 Selvaraju et al., "Grad-CAM: Visual Explanations from Deep Networks via Gradient-based
 Localization", ICCV 2017, §3: αₖ = (1/Z) Σᵢⱼ ∂y_c/∂Aᵏᵢⱼ with y_c the score before softmax;
-map = ReLU(Σₖ αₖ Aᵏ), upsampled bilinearly to the input size. A layer is "conv-like" when its
-output in this forward pass is a 4-D (N, C, h, w) tensor (a convolution, a norm, an activation or
-a block of them); the default is the last ``nn.Conv2d`` to run.
+map = ReLU(Σₖ αₖ Aᵏ), upsampled bilinearly to the input size.
+
+Default layer: the last 4-D feature map on the way to the logits — after the activation and any
+residual sum, the input of global pooling where there is one — found by walking the graph autograd
+records for one forward pass (:mod:`pellucid.core.views.feature_map`), so it also holds for
+``torch.export`` models. There, for a global-average-pooling → linear head, Grad-CAM equals
+ReLU(CAM)/Z (§3.1; CAM: Zhou et al., CVPR 2016). The last ``nn.Conv2d`` is *not* that map: batch
+norm, the activation and the skip connection come after it.
+
+Any other layer can be asked for by name: a module whose output in this forward pass is a 4-D
+(N, C, h, w) tensor (a convolution, a norm, an activation or a block of them), or
+``"NAME:input"`` for the first input of module NAME. A module called several times in one pass
+means its last call. The resolved layer is reported with every map.
 """
 
 from __future__ import annotations
@@ -23,12 +33,14 @@ from pellucid.core.attribution.registry import Context, Method, register
 from pellucid.core.attribution.result import MethodOutput
 from pellucid.core.errors import UnsupportedLayerError
 from pellucid.core.progress import CancelToken, ProgressFn, step
-from pellucid.core.views.probe import execution_order
+from pellucid.core.views.feature_map import feature_map_feeding_head, parse_layer_point
+from pellucid.core.views.probe import execution_order, hookable
 
-__all__ = ["conv_like_layers"]
+__all__ = ["check_gradcam_layer", "conv_like_layers", "default_gradcam_layer"]
 
 SCHEMA = ParamSchema((
-    Param("layer", "str", None, "qualified name of a conv-like layer (4-D output); default: the last Conv2d"),
+    Param("layer", "str", None, "a layer with a 4-D (N, C, h, w) output, or NAME:input; default: the last "
+          "feature map that feeds the classifier head"),
 ))
 
 
@@ -37,11 +49,75 @@ def conv_like_layers(model: nn.Module, x: torch.Tensor) -> list[str]:
     return execution_order(model, x, keep=lambda _name, _module, out: isinstance(out, torch.Tensor) and out.ndim == 4)
 
 
-def _layer_error(model: nn.Module, x: torch.Tensor, message: str) -> UnsupportedLayerError:
+def _listing(model: nn.Module, x: torch.Tensor) -> str:
     names = conv_like_layers(model, x)
     shown = names if len(names) <= 20 else ["…", *names[-20:]]
-    listing = ", ".join(shown) if names else "none (the model has no layer with a 4-D output)"
-    return UnsupportedLayerError(f"{message}; Grad-CAM needs a conv-like layer; valid layers: {listing}")
+    return ", ".join(shown) if names else "none (the model has no layer with a 4-D output)"
+
+
+def _layer_error(model: nn.Module, x: torch.Tensor, message: str) -> UnsupportedLayerError:
+    return UnsupportedLayerError(f"{message}; Grad-CAM needs a conv-like layer; valid layers: {_listing(model, x)}")
+
+
+def _hooks_refused() -> UnsupportedLayerError:
+    return UnsupportedLayerError(
+        "this model is a TorchScript archive, which does not allow forward hooks, so Grad-CAM cannot read its "
+        "layers; export it with torch.export (kind = \"export\") or use occlusion or an input-gradient method"
+    )
+
+
+def default_gradcam_layer(model: nn.Module, x: torch.Tensor) -> str:
+    """The name of the layer Grad-CAM uses when none is given (see the module docstring)."""
+    if not hookable(model):
+        raise _hooks_refused()
+    with torch.inference_mode(False):
+        return feature_map_feeding_head(model, x.detach().clone()).name
+
+
+def check_gradcam_layer(model: nn.Module, input_shape: tuple[int, int, int], layer: str | None) -> str:
+    """Refuse, before any work starts, a layer that Grad-CAM cannot use; return the layer it will use.
+
+    ``input_shape`` is the model's (C, H, W); one forward pass on zeros finds the layer's output shape.
+    """
+    p = next(model.parameters(), None)
+    dtype = p.dtype if p is not None and p.is_floating_point() else torch.float32
+    x = torch.zeros(1, *input_shape, dtype=dtype)
+    if not hookable(model):
+        raise _hooks_refused()
+    if not layer:
+        return default_gradcam_layer(model, x)
+    point = parse_layer_point(layer)
+    modules = dict(model.named_modules())
+    if not point.module or point.module not in modules:
+        raise _layer_error(model, x, f"the model has no layer named {point.module!r}")
+    shapes: dict[str, tuple] = {}
+    owner = threading.get_ident()
+
+    def pre(_m: nn.Module, args: Any) -> None:
+        if threading.get_ident() == owner and args and isinstance(args[0], torch.Tensor):
+            shapes["input"] = tuple(args[0].shape)
+
+    def post(_m: nn.Module, _args: Any, out: Any) -> None:
+        if threading.get_ident() == owner:
+            shapes["output"] = tuple(out.shape) if isinstance(out, torch.Tensor) else type(out).__name__
+
+    handles = [modules[point.module].register_forward_pre_hook(pre), modules[point.module].register_forward_hook(post)]
+    modes = [(m, m.training) for m in model.modules()]
+    model.eval()
+    try:
+        with torch.inference_mode():
+            model(x)
+    finally:
+        for h in handles:
+            h.remove()
+        for m, mode in modes:
+            m.training = mode
+    got = shapes.get(point.where)
+    if got is None:
+        raise _layer_error(model, x, f"layer {point.module!r} does not run in the forward pass")
+    if not isinstance(got, tuple) or len(got) != 4:
+        raise _layer_error(model, x, f"layer {point.name!r} gives {got}, not a 4-D (N, C, h, w) map")
+    return point.name
 
 
 def _gradcam(
@@ -49,62 +125,76 @@ def _gradcam(
     progress: ProgressFn | None, cancel: CancelToken | None,
 ) -> MethodOutput:
     wanted: str | None = params["layer"] or None
+    if not hookable(model):
+        raise _hooks_refused()
     modules = dict(model.named_modules())
-    if wanted is not None and (wanted not in modules or wanted == ""):
-        raise _layer_error(model, x, f"the model has no layer named {wanted!r}")
     if wanted is None:
-        chosen = {n: m for n, m in modules.items() if isinstance(m, nn.Conv2d)}
-        if not chosen:
-            raise _layer_error(model, x, "the model has no nn.Conv2d to use as the default layer; pass 'layer'")
+        point = feature_map_feeding_head(model, x)
     else:
-        chosen = {wanted: modules[wanted]}
+        point = parse_layer_point(wanted)
+        if not point.module or point.module not in modules:
+            raise _layer_error(model, x, f"the model has no layer named {point.module!r}")
+    module = modules[point.module]
 
     captured: dict[str, Any] = {}
     owner = threading.get_ident()  # only this call's forward pass is captured, not other threads'
 
-    def make(name: str):
-        def hook(module: nn.Module, inputs: Any, output: Any) -> Any:
-            if threading.get_ident() != owner:
-                return None
-            captured["name"], captured["out"] = name, output
-            # Hand a copy downstream so an in-place op after this layer cannot change A.
-            return output.clone() if isinstance(output, torch.Tensor) else output
-        return hook
+    # Hand a copy downstream so an in-place op after this point cannot change A.
+    def post(_m: nn.Module, _inputs: Any, output: Any) -> Any:
+        if threading.get_ident() != owner:
+            return None
+        captured["out"] = output
+        return output.clone() if isinstance(output, torch.Tensor) else output
+
+    def pre(_m: nn.Module, args: Any) -> Any:
+        if threading.get_ident() != owner or not args or not isinstance(args[0], torch.Tensor):
+            return None
+        captured["out"] = args[0]
+        return (args[0].clone(), *args[1:])
 
     step(0, 1, progress=progress, cancel=cancel)
-    handles = [m.register_forward_hook(make(n)) for n, m in chosen.items()]
+    handle = module.register_forward_pre_hook(pre) if point.where == "input" else module.register_forward_hook(post)
     try:
         with grad_enabled():
             # The input requires grad so A is in the graph even when the weights are frozen.
             score = logits_of(model, x.detach().requires_grad_(True))[0, target]
             if "out" not in captured:
-                raise _layer_error(model, x, f"layer {wanted!r} did not run in the forward pass")
+                raise _layer_error(model, x, f"layer {point.name!r} did not run in the forward pass")
             act = captured["out"]
             if not isinstance(act, torch.Tensor) or act.ndim != 4:
                 shape = tuple(act.shape) if isinstance(act, torch.Tensor) else type(act).__name__
-                raise _layer_error(model, x, f"layer {captured['name']!r} outputs {shape}, not (N, C, h, w)")
+                raise _layer_error(model, x, f"layer {point.name!r} gives {shape}, not (N, C, h, w)")
             (grad,) = torch.autograd.grad(score, act, allow_unused=True)
             if grad is None:
-                raise _layer_error(model, x, f"the class score does not depend on layer {captured['name']!r}")
+                raise _layer_error(model, x, f"the class score does not depend on layer {point.name!r}")
     finally:
-        for h in handles:
-            h.remove()
+        handle.remove()
     step(1, 1, progress=progress, cancel=cancel)
     act = act.detach()
     alpha = grad.mean(dim=(2, 3), keepdim=True)  # (1, C, 1, 1): (1/Z) Σᵢⱼ ∂y/∂Aᵢⱼ
     low = torch.relu((alpha * act).sum(dim=1, keepdim=True))  # (1, 1, h, w)
     up = F.interpolate(low, size=tuple(x.shape[-2:]), mode="bilinear", align_corners=False)
-    extras: dict[str, Any] = {"layer_shape": list(act.shape[1:])}
+    extras: dict[str, Any] = {"layer_shape": list(act.shape[1:]),
+                              "layer_choice": "given" if wanted else "the feature map feeding the head"}
     if float(low.max()) <= 0.0:
         extras["warning"] = (
-            f"Grad-CAM is zero everywhere at layer {captured['name']!r}: no positive evidence for this "
+            f"Grad-CAM is zero everywhere at layer {point.name!r}: no positive evidence for this "
             "class at this layer; try an earlier layer or another method"
+        )
+    elif act.shape[2] * act.shape[3] == 1:
+        extras["warning"] = (
+            f"layer {point.name!r} has a 1×1 map, so Grad-CAM cannot show where the evidence is; "
+            "pick an earlier layer with a larger map"
         )
     return MethodOutput(
         map=up[0, 0].cpu().numpy().astype(np.float32), signed=False,
         raw=low[0, 0].cpu().numpy().astype(np.float32), n_forwards=1, n_backwards=1,
-        resolved={"layer": captured["name"]}, extras=extras,
+        resolved={"layer": point.name}, extras=extras,
     )
+
+
+def _check(model: nn.Module, input_shape: tuple[int, int, int], params: dict[str, Any]) -> None:
+    check_gradcam_layer(model, input_shape, params["layer"])
 
 
 register(Method(
@@ -113,9 +203,11 @@ register(Method(
     fn=_gradcam,
     schema=SCHEMA,
     description="Channels of a conv layer weighted by the average gradient of the class score, summed, "
-                "clipped at zero and upsampled: coarse regions that raise the score, at that layer's resolution.",
+                "clipped at zero and upsampled: coarse regions that raise the score, at that layer's resolution. "
+                "By default the last feature map that feeds the classifier head.",
     reference="Selvaraju et al., Grad-CAM, ICCV 2017, §3",
     signed=False,
     needs_conv_layer=True,
     cost=lambda params, size: 3.0,
+    check=_check,
 ))

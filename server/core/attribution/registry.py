@@ -11,6 +11,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any, Protocol
 
+import numpy as np
 import torch
 from torch import nn
 
@@ -18,13 +19,15 @@ from pellucid.core.attribution import _common
 from pellucid.core.attribution.baselines import Normalization
 from pellucid.core.attribution.params import ParamSchema
 from pellucid.core.attribution.result import AttributionMap, MethodOutput
-from pellucid.core.errors import BadParameterError
+from pellucid.core.errors import BadParameterError, ModelOutputError
 from pellucid.core.progress import CancelToken, ProgressFn
+from pellucid.core.views.predict import check_finite
 
 __all__ = [
     "Context",
     "Method",
     "UnknownMethodError",
+    "check_request",
     "compute_attribution",
     "get_method",
     "list_methods",
@@ -79,6 +82,9 @@ class Method:
     stochastic: bool = False
     needs_conv_layer: bool = False
     uses_gradients: bool = True
+    # check(model, (C, H, W), validated params) raises a PellucidError for a request that cannot
+    # work on this model, so the web answers 4xx and the CLI exits 2 before any job starts.
+    check: Callable[[nn.Module, tuple[int, int, int], dict[str, Any]], None] | None = None
 
     def describe(self) -> dict[str, Any]:
         cost_224 = float(self.cost(self.schema.validate({}), (224, 224)))
@@ -125,6 +131,20 @@ def get_method(name: str) -> Method:
         ) from None
 
 
+def check_request(name: str, model: nn.Module, input_shape: tuple[int, int, int],
+                  params: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """Validate ``params`` for method ``name`` against this model before any work starts.
+
+    ``input_shape`` is the model's (C, H, W). Returns the validated parameters; raises
+    BadParameterError, UnsupportedLayerError or UnknownMethodError with one sentence.
+    """
+    method = get_method(name)
+    checked = method.schema.validate(params, method=method.name)
+    if method.check is not None:
+        method.check(model, tuple(input_shape), dict(checked))
+    return dict(checked)
+
+
 def list_methods() -> list[dict[str, Any]]:
     """JSON-able descriptions of every method, in registration order."""
     return [m.describe() for m in _REGISTRY.values()]
@@ -162,6 +182,7 @@ def compute_attribution(
     with _common.evaluating(model):
         with torch.inference_mode():
             logits = _common.logits_of(model, x)
+        check_finite(logits)  # the CLI's refusal, for every caller: no silent all-zero map
         index, source = _common.resolve_target(logits, target)
         # Tensors the method creates must be usable by autograd even if the caller is inside
         # torch.inference_mode().
@@ -172,6 +193,11 @@ def compute_attribution(
     amap = out.map
     h, w = x.shape[-2:]
     assert amap.shape == (h, w), f"{spec.name} returned a {amap.shape} map for a {(h, w)} input"
+    if not np.isfinite(amap).all():
+        raise ModelOutputError(
+            f"the {spec.title} map holds NaN or infinite values: the model returned NaN or infinite scores for "
+            "some of the inputs the method feeds it; check its weights and the preprocessing in the spec (mean/std)"
+        )
     checked.update(out.resolved)
     return AttributionMap(
         map=amap.astype("float32", copy=False),

@@ -1,9 +1,16 @@
 """Occlusion sensitivity behind the registry (the computation lives in :mod:`pellucid.core.occlusion.engine`).
 
 Zeiler & Fergus, "Visualizing and Understanding Convolutional Networks", ECCV 2014, §4.2. The
-map is the drop in target probability when a patch covering the pixel is hidden (signed:
-negative where hiding raises the probability). Patch 16, stride 8 and the image-mean fill are
-Pellucid's own defaults; the paper fixes none.
+map is the drop in the target's score when a patch covering the pixel is hidden (signed:
+negative where hiding raises it). The score is the class probability (the spec's softmax or
+sigmoid) or, with ``output = "logit"``, the raw score before it. Patch 16, stride 8 and the
+image-mean fill are Pellucid's own defaults; the paper fixes none.
+
+Saturation. Near p = 1 (or 0) a probability hardly moves even when the raw score moves a lot
+(dp = p(1 − p)·dz for a softmax or sigmoid), so the probability map is nearly flat whatever
+the evidence. A map is reported as saturated when p ≥ 0.99 or p ≤ 0.01 and no patch moves p by
+more than 0.01 (Pellucid's own thresholds); the result then carries a warning that suggests
+``output = "logit"``.
 """
 
 from __future__ import annotations
@@ -17,17 +24,57 @@ from torch import nn
 from pellucid.core.attribution.params import Param, ParamSchema
 from pellucid.core.attribution.registry import Context, Method, register
 from pellucid.core.attribution.result import MethodOutput
+from pellucid.core.errors import BadParameterError
 from pellucid.core.progress import CancelToken, ProgressFn
+
+__all__ = ["SATURATED_CHANGE", "SATURATED_P", "check_geometry", "saturation_warning"]
+
+SATURATED_P = 0.99  # a probability this close to 1 (or to 0) barely moves
+SATURATED_CHANGE = 0.01  # ...and no patch moved it by more than this
 
 SCHEMA = ParamSchema((
     Param("patch", "int", 16, "side of the hidden square in pixels", min=1, max=4096),
     Param("stride", "int", 8, "step between patch positions in pixels", min=1, max=4096),
     Param("baseline", "choice", "mean", "fill of the hidden square: the image's mean colour, zero in input "
           "space, or a blurred copy", choices=("mean", "zero", "blur")),
+    Param("output", "choice", "probability", "the score whose drop is mapped: the class probability, or the raw "
+          "score before softmax/sigmoid ('logit'), which still moves when the probability is saturated near 1",
+          choices=("probability", "logit")),
     Param("engine", "choice", "auto", "how the positions are evaluated: 'auto' picks the fastest exact engine "
           "(incremental where it pays, else batched); 'approximate' refines a coarse grid and is not exact",
           choices=("auto", "batched", "incremental", "naive", "approximate")),
 ))
+
+
+def check_geometry(input_shape: tuple[int, int, int], params: dict[str, Any]) -> None:
+    """Patch and stride must fit a (C, H, W) input, and the stride must not skip pixels."""
+    _, h, w = input_shape
+    for name in ("patch", "stride"):
+        value = params.get(name)
+        if isinstance(value, int) and value > min(h, w):
+            raise BadParameterError(
+                f"occlusion {name} {value} px is larger than the model's {h}×{w} input; use at most {min(h, w)} px"
+            )
+    patch, stride = params.get("patch"), params.get("stride")
+    if isinstance(patch, int) and isinstance(stride, int) and stride > patch:
+        raise BadParameterError(
+            f"occlusion stride {stride} px is larger than the patch ({patch} px): some pixels would never be hidden; "
+            f"use a stride of at most {patch} px"
+        )
+
+
+def saturation_warning(base_score: float, grid: np.ndarray, *, output: str) -> str | None:
+    """The warning for a probability map that is flat because the probability is saturated, else None."""
+    if output == "logit" or not np.isfinite(grid).all():
+        return None
+    largest = float(np.abs(grid).max()) if grid.size else 0.0
+    if (base_score >= SATURATED_P or base_score <= 1.0 - SATURATED_P) and largest <= SATURATED_CHANGE:
+        return (
+            f"the class probability is saturated at {base_score:.4f}: no hidden patch moves it by more than "
+            f"{largest:.4f}, so this map is nearly flat whatever the evidence; use output = \"logit\" to map "
+            "changes of the raw score instead"
+        )
+    return None
 
 
 def _occlusion(
@@ -36,15 +83,23 @@ def _occlusion(
 ) -> MethodOutput:
     from pellucid.core.occlusion.engine import occlusion_map  # lazily: keeps the registry importable on its own
 
+    output = "logit" if params["output"] == "logit" else context.output_kind
     res = occlusion_map(
         model, x, target=target, patch=params["patch"], stride=params["stride"],
-        baseline=params["baseline"], output=context.output_kind, method=params["engine"],
+        baseline=params["baseline"], output=output, method=params["engine"],
         progress=progress, cancel=cancel,
     )
     extras: dict[str, Any] = {"engine": res.engine, "positions": int(res.grid.size),
-                              "base_score": float(res.base_score)}
+                              "base_score": float(res.base_score), "score": output}
+    warnings = []
     if getattr(res, "approximate", False):
-        extras["warning"] = "approximate occlusion: only some positions were evaluated exactly"
+        warnings.append("approximate occlusion: only some positions were evaluated exactly")
+    saturated = saturation_warning(float(res.base_score), np.asarray(res.grid), output=output)
+    if saturated:
+        extras["saturated"] = True
+        warnings.append(saturated)
+    if warnings:
+        extras["warning"] = "; ".join(warnings)
     return MethodOutput(
         map=np.asarray(res.drop, dtype=np.float32), signed=True,
         raw=np.asarray(res.grid, dtype=np.float32), n_forwards=int(res.n_forwards), n_backwards=0,
@@ -65,16 +120,20 @@ def _cost(params: dict[str, Any], size: tuple[int, int]) -> float:
     return float(1 + _positions(h, patch, stride) * _positions(w, patch, stride))
 
 
+def _check(model: nn.Module, input_shape: tuple[int, int, int], params: dict[str, Any]) -> None:
+    check_geometry(input_shape, params)
+
+
 register(Method(
     name="occlusion",
     title="Occlusion sensitivity",
     fn=_occlusion,
     schema=SCHEMA,
-    description="Hide a square at each position and record how much the class probability drops: slow but "
-                "direct, at the resolution of the stride.",
+    description="Hide a square at each position and record how much the class probability (or raw score) "
+                "drops: slow but direct, at the resolution of the stride.",
     reference="Zeiler & Fergus, Visualizing and Understanding Convolutional Networks, ECCV 2014, §4.2",
     signed=True,
     uses_gradients=False,
     cost=_cost,
+    check=_check,
 ))
-

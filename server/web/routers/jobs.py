@@ -11,11 +11,12 @@ import hashlib
 import json
 
 import numpy as np
-from fastapi import APIRouter, Depends, Query
+from fastapi import APIRouter, Depends, Query, Request
 from fastapi.responses import Response
 
 from pellucid.core.attribution import (
     Normalization,
+    check_request,
     compute_attribution,
     faithfulness,
     get_method,
@@ -26,9 +27,7 @@ from pellucid.core.attribution import (
 from pellucid.core.cache import result_key
 from pellucid.core.errors import BadParameterError, NotFoundError
 from pellucid.core.jobs import Job
-from pellucid.core.model.loading import LoadedModel
 from pellucid.core.views import render
-from pellucid.core.views.probe import find_layer
 from pellucid.web.deps import get_workspace
 from pellucid.web.routers._media import data_url, rounded_rows
 from pellucid.web.schemas import CAUTION, JobRequest, JobStatus, MethodList, Ranking, ResultResponse, SharedScale
@@ -50,29 +49,6 @@ def get_methods() -> MethodList:
     return MethodList(methods=methods)
 
 
-def _check_geometry(lm: LoadedModel, params: dict) -> None:
-    """Patch and stride must fit the model's input; caught here so the error is a 4xx, not a failed job."""
-    h, w = lm.spec.input.height, lm.spec.input.width
-    for name in ("patch", "stride"):
-        value = params.get(name)
-        if isinstance(value, int) and value > min(h, w):
-            raise BadParameterError(
-                f"{name} {value} px is larger than the model's {h}×{w} input; use at most {min(h, w)} px"
-            )
-    patch, stride = params.get("patch"), params.get("stride")
-    if isinstance(patch, int) and isinstance(stride, int) and stride > patch:
-        raise BadParameterError(
-            f"stride {stride} px is larger than the patch ({patch} px): some pixels would never be hidden; "
-            f"use a stride of at most {patch} px"
-        )
-
-
-def _check_layer(lm: LoadedModel, params: dict) -> None:
-    layer = params.get("layer")
-    if layer:
-        find_layer(lm.module, layer)
-
-
 def _result_id(key: tuple) -> str:
     return hashlib.sha256(json.dumps(key).encode()).hexdigest()[:24]
 
@@ -88,12 +64,14 @@ def job_status(job: Job, *, cached: bool = False) -> JobStatus:
 
 @router.post("/jobs", response_model=JobStatus, status_code=202,
              summary="Start an attribution map (occlusion or any registered method) as a job")
-def start_job(body: JobRequest, ws: Workspace = Depends(get_workspace)) -> JobStatus:
+def start_job(body: JobRequest, request: Request, ws: Workspace = Depends(get_workspace)) -> JobStatus:
     lm = ws.model(body.model)
     method = get_method(body.method)
-    params = method.schema.validate(body.params, method=method.name)
-    _check_geometry(lm, params)
-    _check_layer(lm, params)
+    # Refused here, as a 4xx, rather than as a failed job: a layer Grad-CAM cannot use, a patch
+    # larger than the input (each method's own check, shared with the CLI and the audit).
+    params = check_request(method.name, lm.module, lm.input_shape, body.params)
+    ws.check_job(lm, method.name, params)  # memory and occlusion-grid limits, refused before the job starts
+    client = request.client.host if request.client else None
     image = ws.image(body.image)
     prep = ws.prepared(lm, body.image)
     if body.target is None or body.target == "":
@@ -106,7 +84,8 @@ def start_job(body: JobRequest, ws: Workspace = Depends(get_workspace)) -> JobSt
     description = f"{method.title} · {lm.name} · {image.name}"
     meta = {"result_id": rid, "model": lm.name, "image": image.sha256, "method": method.name}
     if ws.cache.get(rid) is not None:
-        job = ws.jobs.submit(method.name, lambda progress, cancel: rid, description=description, meta=meta)
+        job = ws.jobs.submit(method.name, lambda progress, cancel: rid, description=description, meta=meta,
+                             client=client)
         return job_status(job, cached=True)
     spec = lm.spec
     normalization = Normalization.of(spec.preprocess.mean, spec.preprocess.std)
@@ -123,7 +102,7 @@ def start_job(body: JobRequest, ws: Workspace = Depends(get_workspace)) -> JobSt
         ))
         return rid
 
-    job = ws.jobs.submit(method.name, run, description=description, meta=meta)
+    job = ws.jobs.submit(method.name, run, description=description, meta=meta, client=client)
     return job_status(job)
 
 
@@ -168,6 +147,12 @@ def _scale(record: ResultRecord, vmin: float | None, vmax: float | None) -> tupl
     lo, hi = magnitude_range(record.amap.map, signed=record.amap.signed)
     lo = lo if vmin is None else vmin
     hi = hi if vmax is None else vmax
+    limit = float(np.finfo(np.float32).max)  # maps are float32: a wider scale cannot be drawn
+    if not (abs(lo) <= limit and abs(hi) <= limit):
+        raise BadParameterError(f"vmin and vmax must be finite numbers within ±{limit:.3g}; "
+                                f"received vmin={lo}, vmax={hi}")
+    if hi > lo and hi - lo < 1e-36:  # 255 / (vmax - vmin) would overflow float32
+        raise BadParameterError(f"vmax − vmin must be at least 1e-36; received vmin={lo}, vmax={hi}")
     if not hi > lo:
         raise BadParameterError(f"the colour scale needs vmin < vmax; received vmin={lo}, vmax={hi}")
     return lo, hi

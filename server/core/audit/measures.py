@@ -9,11 +9,19 @@ maps such as occlusion that is the area whose hiding lowers the probability.
 - ``energy_pointing``: Wang et al., "Score-CAM", CVPR Workshops 2020, §4.3: share of the map's
   energy inside the object's bounding box. With a box and no mask it equals ``object_share``.
 - region shares: the border band, each corner box and the centre box; always computed, because a
-  shortcut (a stamp, a ruler, a frame) usually sits in one of them. Their sizes are Pellucid's own
-  defaults (corner box = a quarter of each side, border band = 1/16 of the shorter side, centre
-  box = half of each side), recorded with every run. ``regions_off_object`` counts only the
-  evidence in a region that lies outside the annotated object (equal to ``regions`` without one):
-  a chip in a corner is not a shortcut, a tag beside it may be.
+  shortcut (a stamp, a ruler, a frame) usually sits in one of them. ``regions_off_object`` counts
+  only the evidence in a region that lies outside the object when boxes or masks were given
+  (equal to ``regions`` without them): an object in a corner is not a shortcut, a mark beside it
+  may be.
+
+Everything scales with the input (the rule, stated once):
+
+- pointing tolerance = 15/224 of the input's shorter side. Zhang et al.'s 15 px are for inputs of
+  about 224 px, so a 224×224 input keeps 15 px, a 32×32 input gets 2.1 px and a 448×448 input
+  30 px. A fixed 15 px on a 32 px input would count nearly every peak as a hit.
+- corner box = 1/4 of each side, border band = 1/16 of the shorter side, centre box = 1/2 of each
+  side (Pellucid's own defaults; each at least 1 px, rounded to whole pixels), recorded with every
+  run as fractions.
 """
 
 from __future__ import annotations
@@ -29,6 +37,7 @@ from pellucid.core.errors import BadParameterError
 __all__ = [
     "CORNERS",
     "POINTING_TOLERANCE",
+    "POINTING_TOLERANCE_FRACTION",
     "REGIONS",
     "ImageMeasures",
     "RegionLayout",
@@ -36,6 +45,7 @@ __all__ = [
     "energy_pointing",
     "measure_map",
     "pointing_hit",
+    "pointing_tolerance",
     "positive_part",
     "region_masks",
     "share_inside",
@@ -43,8 +53,11 @@ __all__ = [
 
 CORNERS = ("top_left", "top_right", "bottom_left", "bottom_right")
 REGIONS = ("border", *CORNERS, "centre")
-# Zhang et al. (ECCV 2016) count a hit within 15 pixels of the annotated object.
+# Zhang et al. (ECCV 2016) count a hit within 15 pixels of the annotated object, on inputs of
+# about 224 px; Pellucid keeps that share of the input's shorter side.
 POINTING_TOLERANCE = 15.0
+POINTING_REFERENCE_SIDE = 224.0
+POINTING_TOLERANCE_FRACTION = POINTING_TOLERANCE / POINTING_REFERENCE_SIDE
 
 Box = tuple[int, int, int, int]  # (x0, y0, x1, y1), exclusive ends, input pixels
 
@@ -117,12 +130,20 @@ def share_inside(amap: np.ndarray, mask: np.ndarray) -> float | None:
     return float(mass[mask].sum()) / total
 
 
-def pointing_hit(amap: np.ndarray, mask: np.ndarray, *, tolerance: float = POINTING_TOLERANCE) -> bool | None:
+def pointing_tolerance(shape: tuple[int, int]) -> float:
+    """The pointing game's tolerance in pixels for an (H, W) input: 15/224 of the shorter side."""
+    return POINTING_TOLERANCE_FRACTION * float(min(shape[0], shape[1]))
+
+
+def pointing_hit(amap: np.ndarray, mask: np.ndarray, *, tolerance: float | None = None) -> bool | None:
     """Zhang et al.'s pointing game: does the map's maximum lie within ``tolerance`` px of the object?
 
-    The maximum is the first (row-major) pixel holding the largest value. None when the map has no
-    positive value (it points nowhere) or the object mask is empty.
+    ``tolerance`` None (the default) scales with the map: :func:`pointing_tolerance`. The maximum
+    is the first (row-major) pixel holding the largest value. None when the map has no positive
+    value (it points nowhere) or the object mask is empty.
     """
+    if tolerance is None:
+        tolerance = pointing_tolerance(np.shape(amap))
     m = np.nan_to_num(np.asarray(amap, dtype=np.float64), nan=-np.inf)
     if not mask.any() or not np.isfinite(m).any() or float(np.max(m)) <= 0.0:
         return None
@@ -173,9 +194,13 @@ def measure_map(
     *,
     object_mask: np.ndarray | None = None,
     layout: RegionLayout = RegionLayout(),
-    tolerance: float = POINTING_TOLERANCE,
+    tolerance: float | None = None,
 ) -> ImageMeasures:
-    """All measures of one (H, W) attribution map; ``object_mask`` is an (H, W) bool mask or None."""
+    """All measures of one (H, W) attribution map; ``object_mask`` is an (H, W) bool mask or None.
+
+    ``tolerance`` is the pointing game's in pixels; None scales it with the map (15/224 of the
+    shorter side).
+    """
     amap = np.asarray(amap)
     if amap.ndim != 2:
         raise BadParameterError(f"an attribution map must be (H, W); received shape {amap.shape}")

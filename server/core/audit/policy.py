@@ -76,7 +76,8 @@ THRESHOLDS: dict[str, tuple[str, str, str, str]] = {
                          "mean share of the class's positive evidence in the border band, off the object"),
     "min_object_share": ("class", "fraction", ">=", "mean share of the class's positive evidence on the object"),
     "min_pointing_accuracy": ("class", "fraction", ">=",
-                              "pointing game: how often the map's maximum lands on the object (15 px tolerance)"),
+                              ("pointing game: how often the map's maximum lands on the object (tolerance 15/224 of "
+                               "the input's shorter side)")),
     "min_energy_pointing": ("class", "fraction", ">=",
                             "energy-based pointing game: mean share of the map's energy in the object box"),
     "max_flagged_fraction": ("run", "fraction", "<=", "share of audited images in the flagged list"),

@@ -43,7 +43,8 @@ MEASURE_SENTENCES: dict[str, str] = {
     "object_share": "Of the map's positive evidence, the share that lies on the annotated object (box or mask); "
                     "near 1 means the model looks at the defect itself.",
     "pointing_accuracy": "Pointing game (Zhang et al., ECCV 2016): how often the map's single strongest pixel lands "
-                         "on the object, within 15 px; hits / (hits + misses).",
+                         "on the object, within a tolerance of 15/224 of the input's shorter side (the paper's 15 px "
+                         "at 224 px); hits / (hits + misses).",
     "energy_pointing": "Energy-based pointing game (Wang et al., Score-CAM, CVPR-W 2020): the share of the map's "
                        "energy inside the object's bounding box.",
     "regions": "Share of the positive evidence in the border band, each corner box and the centre, counting only "

@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 
 from pellucid.core.attribution import get_method
-from pellucid.core.audit.measures import POINTING_TOLERANCE, RegionLayout
+from pellucid.core.audit.measures import RegionLayout
 from pellucid.core.errors import BadParameterError
 
 __all__ = ["TARGETS", "AuditSettings", "GallerySpec", "InjectionSpec"]
@@ -45,7 +45,7 @@ class AuditSettings:
     params: dict = field(default_factory=dict)
     target: str = "label"
     regions: RegionLayout = field(default_factory=RegionLayout)
-    tolerance: float = POINTING_TOLERANCE
+    tolerance: float | None = None  # pointing tolerance in px; None: 15/224 of the input's shorter side
     flag_concentration: float = 4.0
     flag_outside: float = 0.5
     shard_size: int = 8
@@ -56,8 +56,8 @@ class AuditSettings:
         params = method.schema.validate(dict(self.params or {}), method=method.name)
         if self.target not in TARGETS:
             raise BadParameterError(f"target must be one of {', '.join(TARGETS)}; received {self.target!r}")
-        if isinstance(self.tolerance, bool) or not isinstance(self.tolerance, (int, float)) or not (
-                math.isfinite(self.tolerance) and self.tolerance >= 0):
+        if self.tolerance is not None and (isinstance(self.tolerance, bool) or not isinstance(
+                self.tolerance, (int, float)) or not (math.isfinite(self.tolerance) and self.tolerance >= 0)):
             raise BadParameterError(f"pointing tolerance must be a non-negative number of pixels; received "
                                     f"{self.tolerance!r}")
         if isinstance(self.flag_concentration, bool) or not isinstance(self.flag_concentration, (int, float)) or not (
@@ -67,7 +67,8 @@ class AuditSettings:
         for name, value, hi in (("shard_size", self.shard_size, 4096), ("threads", self.threads, 256)):
             if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= hi:
                 raise BadParameterError(f"{name} must be a whole number from 1 to {hi}; received {value!r}")
-        return replace(self, params=dict(params), tolerance=float(self.tolerance),
+        return replace(self, params=dict(params),
+                       tolerance=None if self.tolerance is None else float(self.tolerance),
                        flag_concentration=float(self.flag_concentration), flag_outside=float(self.flag_outside))
 
     def to_dict(self) -> dict:
@@ -87,7 +88,7 @@ class AuditSettings:
     def from_dict(cls, data: dict) -> AuditSettings:
         return cls(
             method=data["method"], params=dict(data.get("params") or {}), target=data.get("target", "label"),
-            regions=RegionLayout(**data.get("regions", {})), tolerance=data.get("tolerance", POINTING_TOLERANCE),
+            regions=RegionLayout(**data.get("regions", {})), tolerance=data.get("tolerance"),
             flag_concentration=data.get("flag_concentration", 4.0), flag_outside=data.get("flag_outside", 0.5),
             shard_size=data.get("shard_size", 8), threads=data.get("threads", 1),
         )

@@ -75,7 +75,7 @@ class BusyError(PellucidError):
 
     def __init__(self, message: str, *, retry_after: float = 1.0) -> None:
         super().__init__(message)
-        self.retry_after = max(1, int(round(retry_after)))
+        self.retry_after = max(1, round(retry_after))
 
 
 class Cancelled(PellucidError):

@@ -55,13 +55,14 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.exposure = exposure
     app.add_middleware(SecurityMiddleware, exposure=exposure)
 
-    from pellucid.web.routers import docs, images, inspect, jobs, models, pages, status
+    from pellucid.web.routers import docs, estimate, images, inspect, jobs, models, pages, status
 
     app.include_router(status.router)
     app.include_router(models.router)
     app.include_router(images.router)
     app.include_router(inspect.router)
     app.include_router(jobs.router)
+    app.include_router(estimate.router)
     app.include_router(pages.router)
     app.include_router(docs.router)
     from pellucid.web.routers import audits

@@ -38,7 +38,7 @@ class Settings:
     # Any request body other than an image upload (JSON), in bytes; larger bodies get 413.
     max_body_bytes: int = 2 * MiB
     # What one job may hold for its batches (estimated from the model's activation sizes), in bytes.
-    max_job_memory: int = 1024 * MiB
+    max_job_memory: int = 2048 * MiB
     # Occlusion grids with more positions are refused; the estimate endpoint says how long one takes.
     max_occlusion_positions: int = 20_000
     # Access token; required (and generated when None) whenever host is not a loopback address.

@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 
+from pellucid.core.attribution.budget import JobEstimate, JobLimits, check_job, estimate_job, in_flight_bytes
 from pellucid.core.cache import ResultCache
 from pellucid.core.confine import resolve_inside as _confined
 from pellucid.core.errors import ModelLoadError, NotFoundError, PellucidError
@@ -99,6 +100,7 @@ class Workspace:
                                        max_entries=max(8, settings.max_images), size=prepared_bytes,
                                        what="prepared input")
         self._layer_maps = _Lru(limit=16)
+        self._forward_seconds = _Lru(limit=16)
         self._collect_specs()
 
     def _collect_specs(self) -> None:
@@ -176,6 +178,39 @@ class Workspace:
             hit = layer_map(model.module, input_shape=model.input_shape)
             self._layer_maps.put(key, hit)
         return hit
+
+    def forward_seconds(self, model: LoadedModel) -> float:
+        """Seconds of one forward pass of ``model`` on this machine (measured once: a batch of 4, best of 3)."""
+        key = (model.name, model.fingerprint)
+        hit = self._forward_seconds.get(key)
+        if hit is None:
+            import torch
+
+            x = torch.zeros((4, *model.input_shape))
+            best = float("inf")
+            with torch.inference_mode():
+                model.module(x)  # the first pass pays one-off set-up costs
+                for _ in range(3):
+                    t0 = time.perf_counter()
+                    model.module(x)
+                    best = min(best, time.perf_counter() - t0)
+            hit = best / 4
+            self._forward_seconds.put(key, hit)
+        return hit
+
+    def job_estimate(self, model: LoadedModel, method: str, params: dict) -> JobEstimate:
+        """Forwards, seconds, memory and positions of a job before it runs (``core/attribution/budget.py``)."""
+        lmap = self.layer_map(model) if model.supports_hooks else None
+        return estimate_job(method, params, input_shape=model.input_shape,
+                            in_flight=in_flight_bytes(lmap, model.input_shape),
+                            seconds_per_forward=self.forward_seconds(model))
+
+    def check_job(self, model: LoadedModel, method: str, params: dict) -> JobEstimate:
+        """The estimate, or BadParameterError when the job is over this server's limits."""
+        estimate = self.job_estimate(model, method, params)
+        check_job(estimate, params, JobLimits(max_job_bytes=self.settings.max_job_memory,
+                                              max_occlusion_positions=self.settings.max_occlusion_positions))
+        return estimate
 
     def samples_dir(self, name: str) -> Path | None:
         """The demo samples folder shipped beside a model's spec, if it has one."""

@@ -22,6 +22,12 @@ image of the same size whose non-zero pixels are the object.
 Every file is hashed (sha256) and decoded once at intake: files that cannot be read are skipped
 and listed, never fatal. The dataset hash covers every item's path, label, file hash, box and
 mask hash, so two runs on the same hash saw the same data.
+
+Confinement. ``load_dataset(…, confine=True)`` (what the server uses) reads nothing outside the
+dataset's folder: manifest rows with ``../`` or absolute paths, masks elsewhere and class folders
+or files that are symbolic links leading out are skipped and listed, by the one rule of
+``core/confine.py``. Either way the dataset records ``allowed_root``: its folder when every image
+and mask lies inside it, else None, so a server can tell which stored runs it may show.
 """
 
 from __future__ import annotations
@@ -32,6 +38,7 @@ import io
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from pellucid.core.confine import is_inside
 from pellucid.core.errors import DataError, ImageDecodeError
 from pellucid.core.model.preprocess import read_image
 from pellucid.core.progress import CancelToken, ProgressFn, step
@@ -90,6 +97,8 @@ class Dataset:
     skipped: tuple[SkippedFile, ...]
     hash: str
     notes: tuple[str, ...] = field(default_factory=tuple)
+    # The folder every image and mask lies inside (the root), or None when some lie elsewhere.
+    allowed_root: Path | None = None
 
     @property
     def labels(self) -> list[str]:
@@ -114,6 +123,7 @@ class Dataset:
             "with_mask": sum(1 for i in self.items if i.mask is not None),
             "skipped": [s.to_dict() for s in self.skipped],
             "notes": list(self.notes),
+            "allowed_root": str(self.allowed_root) if self.allowed_root else None,
         }
 
 
@@ -145,7 +155,11 @@ def _dataset_hash(items: list[DatasetItem]) -> str:
     return h.hexdigest()
 
 
-def _scan_folders(root: Path) -> tuple[list[tuple[Path, str]], list[str]]:
+_OUTSIDE = ("lies outside the dataset folder (through '..', an absolute path or a symbolic link); files "
+            "outside it are not read")
+
+
+def _scan_folders(root: Path, *, confine: bool = False) -> tuple[list[tuple[Path, str]], list[str]]:
     pairs: list[tuple[Path, str]] = []
     notes: list[str] = []
     stray = [p.name for p in sorted(root.iterdir()) if p.is_file() and not p.name.startswith(".")]
@@ -154,6 +168,9 @@ def _scan_folders(root: Path) -> tuple[list[tuple[Path, str]], list[str]]:
                      + ", ".join(stray[:5]) + (" …" if len(stray) > 5 else ""))
     other = 0
     for sub in sorted(p for p in root.iterdir() if p.is_dir() and not p.name.startswith(".")):
+        if confine and not is_inside(root, sub):
+            notes.append(f"class folder {sub.name!r} is a symbolic link out of the dataset folder; it was not read")
+            continue
         for path in sorted(sub.rglob("*")):
             if not path.is_file() or any(part.startswith(".") for part in path.relative_to(root).parts):
                 continue
@@ -260,6 +277,7 @@ def _read_manifest(manifest: Path) -> tuple[list[tuple[Path, str, Box | None, Pa
 def load_dataset(
     source: str | Path,
     *,
+    confine: bool = False,
     progress: ProgressFn | None = None,
     cancel: CancelToken | None = None,
 ) -> Dataset:
@@ -267,8 +285,11 @@ def load_dataset(
 
     Raises DataError when there is nothing to audit (a missing or empty folder, a malformed
     manifest, no readable image); unreadable images are skipped and listed in ``skipped``.
+    With ``confine`` nothing outside the dataset's folder is read (see the module docstring).
     """
     src = Path(source).expanduser()
+    if confine and src.is_file():
+        raise DataError("a confined dataset is a folder (class subfolders or manifest.csv), not a manifest file")
     if not src.exists():
         raise DataError(f"dataset {str(src)!r} does not exist; give a folder of class subfolders or a CSV manifest")
     manifest: Path | None = None
@@ -285,12 +306,15 @@ def load_dataset(
     notes: list[str] = []
     entries: list[tuple[Path, str, Box | None, Path | None]] = []
     if manifest is not None:
+        if confine and not is_inside(root, manifest):
+            raise DataError(f"{MANIFEST_NAME} in {str(src)!r} is a symbolic link out of the dataset folder; "
+                            "it was not read")
         rows, notes = _read_manifest(manifest)
         entries = [(p, label, box, mask) for p, label, box, mask, _ in rows]
         if src.is_dir():
             notes.insert(0, f"read {MANIFEST_NAME} in the folder (it lists labels, boxes and masks)")
     else:
-        pairs, notes = _scan_folders(root)
+        pairs, notes = _scan_folders(root, confine=confine)
         entries = [(p, label, None, None) for p, label in pairs]
     if not entries:
         where = f"manifest {str(manifest)!r} lists no images" if manifest else (
@@ -300,10 +324,17 @@ def load_dataset(
 
     items: list[DatasetItem] = []
     skipped: list[SkippedFile] = []
+    contained = True
     entries.sort(key=lambda e: _rel(e[0].resolve() if e[0].exists() else e[0], root))
     for n, (path, label, box, mask) in enumerate(entries):
         step(n, len(entries), progress=progress, cancel=cancel)
         rel = _rel(path.resolve() if path.exists() else path, root)
+        image_outside = not is_inside(root, path)
+        mask_outside = mask is not None and not is_inside(root, mask)
+        if confine and (image_outside or mask_outside):
+            skipped.append(SkippedFile(rel, f"it {_OUTSIDE}" if image_outside else f"its mask {_OUTSIDE}"))
+            continue
+        contained = contained and not (image_outside or mask_outside)
         if not path.is_file():
             skipped.append(SkippedFile(rel, "listed in the manifest but there is no such file"))
             continue
@@ -334,4 +365,4 @@ def load_dataset(
     manifest_sha = hashlib.sha256(manifest.read_bytes()).hexdigest() if manifest else None
     return Dataset(root=root, source="manifest" if manifest else "folders", manifest=manifest,
                    manifest_sha256=manifest_sha, items=tuple(items), skipped=tuple(skipped),
-                   hash=_dataset_hash(items), notes=tuple(notes))
+                   hash=_dataset_hash(items), notes=tuple(notes), allowed_root=root if contained else None)

@@ -5,7 +5,9 @@ store lives in the server's data folder (``Settings.data_dir``) and opens on fir
 folder that cannot be used answers 503 with the store's message.
 
 Datasets come from two places only: the demo tile generator (written into the data folder) or a
-folder inside the server's image root, so a request cannot make the server read arbitrary paths.
+folder inside the server's image root, and they are read confined to their folder, so a request
+cannot make the server read arbitrary paths; runs whose folder lies elsewhere keep their pictures
+to themselves (``web/run_access.py``).
 """
 
 from __future__ import annotations
@@ -29,7 +31,8 @@ from pellucid.core.audit.compare import compare_runs
 from pellucid.core.audit.policy import Policy, evaluate_policy, load_policy
 from pellucid.core.audit.runner import stored_inputs
 from pellucid.core.audit.store import RESUMABLE, Store
-from pellucid.core.errors import BadParameterError, DataError, NotFoundError, PellucidError
+from pellucid.core.errors import BadParameterError, ConflictError, DataError, NotFoundError, PellucidError
+from pellucid.core.jobs import BACKGROUND
 from pellucid.core.model.bundled import demo_models_dir
 from pellucid.core.model.layers import conv_layer_names
 from pellucid.core.model.loading import load_model
@@ -38,6 +41,13 @@ from pellucid.core.model.spec import ModelSpec
 from pellucid.core.views import render
 from pellucid.web.deps import get_settings, get_workspace
 from pellucid.web.routers._media import data_url
+from pellucid.web.run_access import (
+    RunClaims,
+    demo_folder,
+    pictures_refusal,
+    require_pictures,
+    restore_demo_folder,
+)
 from pellucid.web.settings import Settings
 from pellucid.web.workspace import Workspace, resolve_inside
 
@@ -56,6 +66,7 @@ def get_store(request: Request, settings: Settings = Depends(get_settings)) -> S
             store = Store(settings.data_dir)
             request.app.state.audit_store = store
             request.app.state.audit_live = {}
+            request.app.state.audit_claims = RunClaims()
         return store
 
 
@@ -129,18 +140,15 @@ def _policy(name: str | None) -> Policy | None:
     return load_policy(known[name])
 
 
-def _demo_folder(settings: Settings, source: DemoSource) -> Path:
-    from pellucid.demo.tiles import make_split, write_folder
-
-    folder = settings.data_dir / "demo-tiles" / f"{source.split}-{source.per_class}-{source.seed}"
-    if not (folder / "manifest.csv").is_file():
-        write_folder(make_split(source.split, per_class=source.per_class, seed=source.seed), folder)
-    return folder
+def _in_use(request: Request) -> set[Path]:
+    """Dataset folders of audit jobs still queued or running (never pruned under them)."""
+    return {Path(v["root"]) for v in _live(request).values() if v.get("root") and v.get("phase") != "finished"}
 
 
-def _dataset_path(settings: Settings, source: DemoSource | FolderSource) -> Path:
+def _dataset_path(request: Request, settings: Settings, source: DemoSource | FolderSource) -> Path:
     if isinstance(source, DemoSource):
-        return _demo_folder(settings, source)
+        return demo_folder(settings, split=source.split, per_class=source.per_class, seed=source.seed,
+                           in_use=_in_use(request))
     if settings.image_root is None:
         raise BadParameterError("this server has no image folder; start it with --images DIR to audit a folder, "
                                 "or audit the demo tiles")
@@ -196,28 +204,36 @@ def _job_view(request: Request, ws: Workspace, job_id: str) -> dict:
     return {**d, "phase": live.get("phase"), "run_id": live.get("run_id")}
 
 
-def _run_list_entry(run: Any) -> dict:
+def _run_list_entry(run: Any, settings: Settings) -> dict:
     s = run.summary or {}
     gate = s.get("gate")
     return {**run.to_dict(with_summary=False), "accuracy": s.get("accuracy"),
             "flagged_count": s.get("flagged_count"), "class_flags": len(s.get("class_flags", [])),
             "gate": None if not gate else ("pass" if gate["passed"] else "fail"),
-            "resumable": run.status in RESUMABLE}
+            "resumable": run.status in RESUMABLE, "pictures": pictures_refusal(run, settings) is None}
 
 
 def _launch(request: Request, ws: Workspace, store: Store, *, model_name: str, dataset_path: Path,
             settings: AuditSettings, injection_req: InjectionRequest | None, background_swap: bool,
             gallery: GallerySpec | None, policy: Policy | None, description: str,
-            prebuilt_injection: InjectionSpec | None = None) -> dict:
+            prebuilt_injection: InjectionSpec | None = None, claimed: str | None = None) -> dict:
     spec = ws.specs[model_name]
-    live: dict[str, Any] = {"phase": "queued", "run_id": None}
+    live: dict[str, Any] = {"phase": "queued", "run_id": None, "root": str(dataset_path)}
+    claims: RunClaims = request.app.state.audit_claims
 
     def work(progress, cancel):
+        try:
+            return audit(progress, cancel)
+        finally:
+            live["phase"] = "finished"
+            claims.release(claimed)
+
+    def audit(progress, cancel):
         live["phase"] = "loading the model"
         # A private copy: the audit must not share hooks or thread settings with interactive requests.
         model = load_model(spec, trust_pickled=ws.settings.trust_pickled)
         live["phase"] = "reading files"
-        dataset = load_dataset(dataset_path, progress=progress, cancel=cancel)
+        dataset = load_dataset(dataset_path, confine=True, progress=progress, cancel=cancel)
         injection = prebuilt_injection or _injection(injection_req, model, dataset.root, policy)
         outcome = run_audit(
             model, dataset, store=store, settings=settings, injection=injection, background_swap=background_swap,
@@ -231,7 +247,12 @@ def _launch(request: Request, ws: Workspace, store: Store, *, model_name: str, d
         live["phase"] = "finished"
         return {"run_id": outcome.run.id}
 
-    job = ws.jobs.submit("audit", work, description=description)
+    try:
+        job = ws.jobs.submit("audit", work, description=description, lane=BACKGROUND,
+                             client=request.client.host if request.client else None)
+    except PellucidError:
+        claims.release(claimed)
+        raise
     _live(request)[job.id] = live
     return _job_view(request, ws, job.id)
 
@@ -275,11 +296,12 @@ def start(body: AuditRequest, request: Request, ws: Workspace = Depends(get_work
     if name not in ws.specs:
         raise NotFoundError(f"no model named {name!r} on this server; models: {', '.join(ws.specs)}")
     audit_settings = AuditSettings(method=body.method, params=body.params, target=body.target).validated()
+    ws.check_job(ws.model(name), audit_settings.method, audit_settings.params)  # per-image memory limits
     policy = _policy(body.policy)
     if body.injection is None and policy is not None and policy.injection is not None:
         body.injection = InjectionRequest(kind="demo_tag", suspect_class=policy.injection.suspect_class,
                                           at=list(policy.injection.at))
-    dataset_path = _dataset_path(settings, body.source)
+    dataset_path = _dataset_path(request, settings, body.source)
     gallery = GallerySpec(layer=body.gallery_layer, top=body.gallery_top) if body.gallery_layer else None
     return _launch(request, ws, store, model_name=name, dataset_path=dataset_path, settings=audit_settings,
                    injection_req=body.injection, background_swap=body.background_swap, gallery=gallery,
@@ -301,17 +323,20 @@ def cancel(job_id: str, request: Request, ws: Workspace = Depends(get_workspace)
 
 
 @api.get("/runs", summary="Stored audit runs, newest first")
-def runs(store: Store = Depends(get_store)) -> dict:
-    return {"runs": [_run_list_entry(r) for r in store.list_runs()]}
+def runs(store: Store = Depends(get_store), settings: Settings = Depends(get_settings)) -> dict:
+    return {"runs": [_run_list_entry(r, settings) for r in store.list_runs()]}
 
 
 @api.get("/runs/{run_id}", summary="One stored run with its settings and summary")
-def run_detail(run_id: str, store: Store = Depends(get_store)) -> dict:
+def run_detail(run_id: str, store: Store = Depends(get_store), settings: Settings = Depends(get_settings)) -> dict:
     run = store.get_run(run_id)
     out = run.to_dict()
     out["artefacts"] = sorted(store.run_artefacts(run.id))
     out["caution"] = CAUTION
     out["resumable"] = run.status in RESUMABLE
+    refusal = pictures_refusal(run, settings)
+    out["pictures"] = refusal is None
+    out["pictures_refusal"] = refusal
     return out
 
 
@@ -322,25 +347,38 @@ def delete(run_id: str, store: Store = Depends(get_store)) -> dict:
     return {"deleted": run.id, "files_removed": removed}
 
 
-@api.post("/runs/{run_id}/resume", summary="Resume an interrupted, cancelled or failed run as a job")
+@api.post("/runs/{run_id}/resume", summary="Resume an interrupted, cancelled or failed run as a job (409 while "
+                                          "it runs or once it is done)")
 def resume(run_id: str, request: Request, ws: Workspace = Depends(get_workspace),
-           store: Store = Depends(get_store)) -> dict:
+           store: Store = Depends(get_store), server: Settings = Depends(get_settings)) -> dict:
     run = store.get_run(run_id)
+    claims: RunClaims = request.app.state.audit_claims
     if run.status not in RESUMABLE:
-        raise BadParameterError(f"run {run.id} is {run.status}; only interrupted, cancelled or failed runs resume")
+        raise ConflictError(f"run {run.id} is {run.status}; only interrupted, cancelled or failed runs resume")
     name = next((n for n, s in ws.specs.items() if s.path and str(s.path) == run.model_spec), None)
     if name is None:
         raise NotFoundError(f"run {run.id} used the model spec {run.model_spec!r}, which this server does not offer; "
                             "resume it from the command line instead")
-    root = Path(run.dataset_root)
-    dataset = load_dataset(root)
-    if dataset.hash != run.dataset_hash:
-        raise DataError(f"the folder {str(root)!r} changed since run {run.id} started (its hash differs); "
-                        "start a new audit")
-    settings, injection, gallery, swap = stored_inputs(store, run)
-    return _launch(request, ws, store, model_name=name, dataset_path=root, settings=settings, injection_req=None,
-                   background_swap=swap, gallery=gallery, policy=None, description=f"resume of run {run.id}",
-                   prebuilt_injection=injection)
+    require_pictures(run, server)  # its images must lie where this server may read
+    claims.claim(run.id)  # two quick resumes: the second is a conflict, not a duplicate run
+    try:
+        run = store.get_run(run.id)
+        if run.status not in RESUMABLE:
+            raise ConflictError(f"run {run.id} is {run.status}; only interrupted, cancelled or failed runs resume")
+        root = Path(run.dataset_root)
+        if not root.is_dir():
+            restore_demo_folder(server, root, in_use=_in_use(request))
+        dataset = load_dataset(root, confine=True)
+        if dataset.hash != run.dataset_hash:
+            raise DataError(f"the folder {str(root)!r} changed since run {run.id} started (its hash differs); "
+                            "start a new audit")
+        settings, injection, gallery, swap = stored_inputs(store, run)
+        return _launch(request, ws, store, model_name=name, dataset_path=root, settings=settings,
+                       injection_req=None, background_swap=swap, gallery=gallery, policy=None,
+                       description=f"resume of run {run.id}", prebuilt_injection=injection, claimed=run.id)
+    except BaseException:
+        claims.release(run.id)
+        raise
 
 
 def _finished(store: Store, run_id: str) -> Any:
@@ -351,8 +389,10 @@ def _finished(store: Store, run_id: str) -> Any:
 
 
 @api.get("/runs/{run_id}/flagged", summary="Flagged images, most suspect first, with picture and overlay")
-def flagged(run_id: str, limit: int = Query(24, ge=1, le=100), store: Store = Depends(get_store)) -> dict:
+def flagged(run_id: str, limit: int = Query(24, ge=1, le=100), store: Store = Depends(get_store),
+            settings: Settings = Depends(get_settings)) -> dict:
     run = _finished(store, run_id)
+    require_pictures(run, settings)
     arts = store.run_artefacts(run.id)
     out = []
     for entry in run.summary["flagged_images"][:limit]:
@@ -366,13 +406,17 @@ def flagged(run_id: str, limit: int = Query(24, ge=1, le=100), store: Store = De
 
 @api.get("/runs/{run_id}/image", summary="One image of a run: its result, picture and overlay")
 def image(run_id: str, rel: str = Query(..., description="path relative to the dataset root"),
-          store: Store = Depends(get_store)) -> dict:
+          store: Store = Depends(get_store), settings: Settings = Depends(get_settings)) -> dict:
     run = _finished(store, run_id)
+    require_pictures(run, settings)
     row = store.result(run.id, rel)
     out: dict[str, Any] = {"rel": row.rel, "label": row.label, "status": row.status, "result": row.data}
     if row.status == "done" and row.map_hash and run.model_spec:
         spec = ModelSpec.from_toml(run.model_spec)
-        path = resolve_inside(Path(run.dataset_root), rel)
+        root = Path(run.dataset["allowed_root"])
+        if not root.is_dir():
+            restore_demo_folder(settings, root)
+        path = resolve_inside(root, rel)
         display = prepare(spec, read_image(path)).display
         amap = store.get_array(row.map_hash)
         signed = bool(row.data.get("signed"))
@@ -400,8 +444,10 @@ def mean_maps(run_id: str, store: Store = Depends(get_store)) -> dict:
 
 
 @api.get("/runs/{run_id}/artefact", summary="A stored PNG of a run (injection examples, feature visuals)")
-def artefact(run_id: str, name: str = Query(...), store: Store = Depends(get_store)) -> Response:
+def artefact(run_id: str, name: str = Query(...), store: Store = Depends(get_store),
+             settings: Settings = Depends(get_settings)) -> Response:
     run = store.get_run(run_id)
+    require_pictures(run, settings)
     digest = store.run_artefacts(run.id).get(name)
     if digest is None or not name.startswith(("injection/", "swap/", "gallery/visual/", "flagged/")):
         raise NotFoundError(f"run {run.id} has no picture called {name!r}")
@@ -409,8 +455,10 @@ def artefact(run_id: str, name: str = Query(...), store: Store = Depends(get_sto
 
 
 @api.get("/runs/{run_id}/gallery", summary="The channel response gallery of a run, as pictures")
-def gallery(run_id: str, channels: int = Query(8, ge=1, le=256), store: Store = Depends(get_store)) -> dict:
+def gallery(run_id: str, channels: int = Query(8, ge=1, le=256), store: Store = Depends(get_store),
+            settings: Settings = Depends(get_settings)) -> dict:
     run = _finished(store, run_id)
+    require_pictures(run, settings)
     g = run.summary.get("gallery")
     if not g:
         raise NotFoundError(f"run {run.id} has no channel gallery; start an audit with a gallery layer")
@@ -435,10 +483,11 @@ def compare(first: str, second: str, store: Store = Depends(get_store)) -> dict:
     return compare_runs(store, first, second)
 
 
-def _report_file(store: Store, run_id: str, kind: str) -> Response:
+def _report_file(store: Store, run_id: str, kind: str, settings: Settings) -> Response:
     from pellucid.core.audit.report import write_report
 
     run = store.get_run(run_id)
+    require_pictures(run, settings)  # a report carries the run's pictures
     with tempfile.TemporaryDirectory(prefix="pellucid-report-") as tmp:
         files = write_report(store, run.id, tmp, pdf=(kind == "pdf"))
         data = files[-1].read_bytes()
@@ -449,13 +498,15 @@ def _report_file(store: Store, run_id: str, kind: str) -> Response:
 
 
 @api.get("/runs/{run_id}/report.html", summary="Download the run's self-contained HTML report")
-def report_html(run_id: str, store: Store = Depends(get_store)) -> Response:
-    return _report_file(store, run_id, "html")
+def report_html(run_id: str, store: Store = Depends(get_store), settings: Settings = Depends(get_settings)
+                ) -> Response:
+    return _report_file(store, run_id, "html", settings)
 
 
 @api.get("/runs/{run_id}/report.pdf", summary="Download the run's PDF report")
-def report_pdf(run_id: str, store: Store = Depends(get_store)) -> Response:
-    return _report_file(store, run_id, "pdf")
+def report_pdf(run_id: str, store: Store = Depends(get_store), settings: Settings = Depends(get_settings)
+               ) -> Response:
+    return _report_file(store, run_id, "pdf", settings)
 
 
 @pages.get("/audits", response_class=HTMLResponse)

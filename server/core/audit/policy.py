@@ -32,7 +32,8 @@ a check. Example::
     [injection]                    # the suspect patch for the injection test
     patch = "tag.png"              # a picture file, relative to this policy file
     suspect_class = "crack"
-    at = [78, 78]                  # top-left (x, y) in model-input pixels
+    at = [78, 78]                  # top-left (x, y) in model-input pixels, or "random" (one place per image)
+    seed = 0                       # optional, with at = "random": the places are drawn from it
     limit = 500                    # optional: at most this many images
 
 A threshold whose measure the audit did not produce (an injection limit without an injection
@@ -82,10 +83,10 @@ THRESHOLDS: dict[str, tuple[str, str, str, str]] = {
                             "energy-based pointing game: mean share of the map's energy in the object box"),
     "max_flagged_fraction": ("run", "fraction", "<=", "share of audited images in the flagged list"),
     "max_injection_flip_rate": ("run", "fraction", "<=",
-                                ("share of other-class images whose prediction flips to the suspect class when the "
-                                 "suspect patch is pasted on")),
+                                ("flips / eligible: share of the other-class images the patch changed and the model "
+                                 "did not already call the suspect class whose prediction flips to it")),
     "max_injection_shift": ("run", "signed", "<=",
-                            "mean rise of the suspect class's probability when the suspect patch is pasted on"),
+                            "mean rise of the suspect class's probability over the images the pasted patch changed"),
     "max_background_swap_drop": ("run", "signed", "<=",
                                  "accuracy lost when each object's background is replaced by another image's"),
     "max_failed_images": ("run", "count", "<=", "images that could not be read or audited"),
@@ -93,7 +94,7 @@ THRESHOLDS: dict[str, tuple[str, str, str, str]] = {
 CLASS_THRESHOLDS = tuple(k for k, v in THRESHOLDS.items() if v[0] == "class")
 RUN_THRESHOLDS = tuple(k for k, v in THRESHOLDS.items() if v[0] == "run")
 _TOP_KEYS = {"name", "description", "thresholds", "classes", "injection", "audit"}
-_INJECTION_KEYS = {"patch", "suspect_class", "at", "limit"}
+_INJECTION_KEYS = {"patch", "suspect_class", "at", "limit", "seed"}
 _AUDIT_KEYS = {"method", "params", "target"}
 
 
@@ -101,11 +102,13 @@ _AUDIT_KEYS = {"method", "params", "target"}
 class InjectionPolicy:
     patch: Path
     suspect_class: str
-    at: tuple[int, int]
+    at: tuple[int, int] | str  # (x, y) or "random"
     limit: int | None = None
+    seed: int = 0
 
     def to_dict(self) -> dict:
-        return {"patch": str(self.patch), "suspect_class": self.suspect_class, "at": list(self.at), "limit": self.limit}
+        return {"patch": str(self.patch), "suspect_class": self.suspect_class,
+                "at": self.at if isinstance(self.at, str) else list(self.at), "limit": self.limit, "seed": self.seed}
 
 
 @dataclass(frozen=True)
@@ -204,16 +207,24 @@ def parse_policy(data: dict, *, path: Path | None = None, sha256: str | None = N
             raise SpecError(f"{where}: injection.suspect_class must be a class label; "
                             f"received {inj['suspect_class']!r}")
         at = inj["at"]
-        if (not isinstance(at, list) or len(at) != 2
-                or any(isinstance(v, bool) or not isinstance(v, int) for v in at)):
-            raise SpecError(f"{where}: injection.at must be two whole numbers [x, y]; received {at!r}")
+        if at != "random" and (not isinstance(at, list) or len(at) != 2
+                               or any(isinstance(v, bool) or not isinstance(v, int) for v in at)):
+            raise SpecError(f"{where}: injection.at must be two whole numbers [x, y] or \"random\"; received {at!r}")
         limit = inj.get("limit")
         if limit is not None and (isinstance(limit, bool) or not isinstance(limit, int) or limit < 1):
             raise SpecError(f"{where}: injection.limit must be a whole number >= 1; received {limit!r}")
+        seed = inj.get("seed", 0)
+        if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
+            raise SpecError(f"{where}: injection.seed must be a whole number >= 0; received {seed!r}")
+        if "seed" in inj and at != "random":
+            raise SpecError(f"{where}: injection.seed only applies with at = \"random\"; remove it or paste at "
+                            "random places")
         base = path.parent if path else Path(".")
         patch = Path(inj["patch"]).expanduser()
         injection = InjectionPolicy(patch=patch if patch.is_absolute() else base / patch,
-                                    suspect_class=inj["suspect_class"], at=(int(at[0]), int(at[1])), limit=limit)
+                                    suspect_class=inj["suspect_class"],
+                                    at="random" if at == "random" else (int(at[0]), int(at[1])), limit=limit,
+                                    seed=seed)
     method, params, target = _audit_table(data.get("audit"), where)
     return Policy(name=data.get("name", path.stem if path else "policy"), description=data.get("description", ""),
                   thresholds=thresholds, classes=classes, injection=injection, path=path, sha256=sha256,
@@ -369,11 +380,15 @@ def _run_check(key: str, summary: dict, threshold: float) -> Check:
             return _judge(key, "run", None, threshold, what="",
                           missing="the audit ran no injection test (give [injection] in the policy or --inject-patch)")
         if key == "max_injection_flip_rate":
+            counts = (f" ({inj.get('flips', 0)} of {inj.get('eligible', 0)} eligible; {inj.get('tested', 0)} tested, "
+                      f"{inj.get('skipped', 0)} skipped because they already carry the patch)")
             return _judge(key, "run", inj.get("flip_rate"), threshold,
-                          what=f"the flip rate to {inj['settings']['suspect_class']!r} after pasting the patch",
-                          missing="no tested image could flip (all were already predicted as the suspect class)")
+                          what=f"the flip rate to {inj['settings']['suspect_class']!r} after pasting the patch{counts}",
+                          missing=("no tested image could flip (all were already predicted as the suspect class or "
+                                   "already carried the patch)"))
         return _judge(key, "run", inj.get("mean_shift"), threshold,
-                      what=f"the mean change of p({inj['settings']['suspect_class']}) after pasting the patch")
+                      what=(f"the mean change of p({inj['settings']['suspect_class']}) after pasting the patch, over "
+                            f"{inj.get('tested', 0)} tested image(s)"))
     if key == "max_background_swap_drop":
         swap = summary.get("background_swap")
         if not swap:

@@ -318,7 +318,8 @@ def stored_inputs(store: Store, run: RunRecord) -> tuple[AuditSettings, Injectio
         if digest is None:
             raise DataError(f"run {run.id} has lost its injection patch; start a new run instead")
         patch = np.asarray(Image.open(io.BytesIO(store.get_bytes(digest))).convert("RGB"), dtype=np.uint8).copy()
-        injection = InjectionSpec(patch=patch, suspect_class=inj["suspect_class"], at=tuple(inj["at"]),
-                                  source=inj.get("source", "given"), limit=inj.get("limit"))
+        at = inj["at"] if inj["at"] == "random" else tuple(inj["at"])
+        injection = InjectionSpec(patch=patch, suspect_class=inj["suspect_class"], at=at,
+                                  source=inj.get("source", "given"), limit=inj.get("limit"), seed=inj.get("seed", 0))
     gallery = GallerySpec(**record["gallery"]) if record.get("gallery") else None
     return settings, injection, gallery, bool(record.get("background_swap"))

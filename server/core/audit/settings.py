@@ -102,15 +102,21 @@ class InjectionSpec:
     (the picture after the spec's resize and crop). ``source`` says where the patch came from.
     ``limit`` caps the number of images tested (None: all images of the other classes).
     ``mask`` (h, w) bool, optional: only these pixels of the patch are pasted (a ring, a blob),
-    the others keep the receiving image's own pixels.
+    the others keep the receiving image's own pixels. ``at = "random"`` pastes each image's patch
+    at its own place, drawn (whole patch inside the input) from ``seed`` and the image's index.
     """
 
     patch: np.ndarray
     suspect_class: str
-    at: tuple[int, int]
+    at: tuple[int, int] | str
     source: str = "given"
     limit: int | None = None
     mask: np.ndarray | None = None
+    seed: int = 0
+
+    @property
+    def random(self) -> bool:
+        return isinstance(self.at, str) and self.at == "random"
 
     def __post_init__(self) -> None:
         p = self.patch
@@ -118,8 +124,12 @@ class InjectionSpec:
                 or min(p.shape[:2]) < 1):
             got = f"{p.dtype} {p.shape}" if isinstance(p, np.ndarray) else type(p).__name__
             raise BadParameterError(f"the suspect patch must be an RGB picture (h, w, 3) uint8; received {got}")
-        if len(self.at) != 2 or any(isinstance(v, bool) or not isinstance(v, (int, np.integer)) for v in self.at):
-            raise BadParameterError(f"the injection location must be two whole numbers (x, y); received {self.at!r}")
+        if not self.random and (isinstance(self.at, str) or len(self.at) != 2 or any(
+                isinstance(v, bool) or not isinstance(v, (int, np.integer)) for v in self.at)):
+            raise BadParameterError(f"the injection location must be two whole numbers (x, y) or \"random\"; "
+                                    f"received {self.at!r}")
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
+            raise BadParameterError(f"the injection seed must be a whole number >= 0; received {self.seed!r}")
         if self.limit is not None and (not isinstance(self.limit, int) or self.limit < 1):
             raise BadParameterError("the injection image limit must be a positive whole number; "
                                     f"received {self.limit!r}")
@@ -136,10 +146,14 @@ class InjectionSpec:
 
     def to_dict(self) -> dict:
         h, w = self.patch.shape[:2]
-        return {"patch_sha256": self.patch_sha256, "patch_size": [int(w), int(h)],
-                "suspect_class": self.suspect_class, "at": [int(self.at[0]), int(self.at[1])],
-                "source": self.source, "limit": self.limit,
-                "masked": self.mask is not None, "mask_pixels": None if self.mask is None else int(self.mask.sum())}
+        out = {"patch_sha256": self.patch_sha256, "patch_size": [int(w), int(h)],
+               "suspect_class": self.suspect_class,
+               "at": "random" if self.random else [int(self.at[0]), int(self.at[1])],
+               "source": self.source, "limit": self.limit,
+               "masked": self.mask is not None, "mask_pixels": None if self.mask is None else int(self.mask.sum())}
+        if self.random:
+            out["seed"] = self.seed
+        return out
 
 
 @dataclass(frozen=True)

@@ -173,3 +173,92 @@ def test_cli_refuses_a_read_only_store_at_start(command: str, tiny_spec: Path, f
     lines = [line for line in err.splitlines() if line.strip()]
     assert len(lines) == 1 and "not writable" in lines[0], err
     assert not (tmp_path / "out" / "summary.json").exists()
+
+
+# --- worker processes end with their audit ------------------------------------------------------------
+
+
+def _workers_of(pid: int) -> list[int]:
+    """Process ids of the pool workers ``pid`` spawned (multiprocessing's spawn entry point)."""
+    found = []
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            stat = (entry / "stat").read_text()
+            cmdline = (entry / "cmdline").read_bytes().replace(b"\0", b" ")
+        except OSError:
+            continue
+        ppid = int(stat.rsplit(")", 1)[-1].split()[1])
+        if ppid == pid and b"spawn_main" in cmdline:
+            found.append(int(entry.name))
+    return found
+
+
+def _alive(pids: list[int]) -> list[int]:
+    alive = []
+    for pid in pids:
+        try:
+            state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[-1].split()[0]
+        except OSError:
+            continue
+        if state != "Z":  # a zombie has ended; only its exit status is left for a parent to collect
+            alive.append(pid)
+    return alive
+
+
+def _start_pool_audit(tiny_spec: Path, folder: Path, tmp_path: Path) -> tuple[subprocess.Popen, list[int]]:
+    argv = [*_audit_argv(tiny_spec, folder, tmp_path / "store", tmp_path / "out")]
+    argv[argv.index("--workers") + 1] = "2"
+    proc = subprocess.Popen(argv, cwd=REPO, env=_env(tiny_spec), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                            start_new_session=True)
+    deadline = time.time() + 180
+    while len(_workers_of(proc.pid)) < 2 or not _finished(tmp_path / "store" / DB_NAME):
+        assert proc.poll() is None, f"the audit ended early: {proc.stderr.read()!r}"
+        assert time.time() < deadline, "the audit's two workers did not start storing results in time"
+        time.sleep(0.1)
+    return proc, _workers_of(proc.pid)
+
+
+def _wait_gone(pids: list[int], limit: float = 60.0) -> list[int]:
+    """Poll until none of ``pids`` runs (bounded; returns those still running at the limit)."""
+    deadline = time.time() + limit
+    while _alive(pids) and time.time() < deadline:
+        time.sleep(0.1)
+    return _alive(pids)
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not Path("/proc").is_dir(), reason="reads process lists from /proc")
+def test_workers_end_when_the_audit_is_killed(tiny_spec: Path, folder: Path, tmp_path: Path) -> None:
+    proc, workers = _start_pool_audit(tiny_spec, folder, tmp_path)
+    try:
+        os.kill(proc.pid, signal.SIGKILL)  # the parent only: nothing gets a chance to clean up
+        proc.wait(timeout=30)
+        assert _wait_gone(workers) == [], "worker processes outlived their killed audit"
+    finally:
+        for pid in _alive(workers):
+            os.kill(pid, signal.SIGKILL)
+        proc.stderr.close()
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not Path("/proc").is_dir(), reason="reads process lists from /proc")
+def test_a_stop_request_reaps_the_workers_and_marks_the_run_interrupted(tiny_spec: Path, folder: Path,
+                                                                        tmp_path: Path) -> None:
+    proc, workers = _start_pool_audit(tiny_spec, folder, tmp_path)
+    try:
+        os.kill(proc.pid, signal.SIGTERM)
+        _, err = proc.communicate(timeout=60)
+        assert proc.returncode == 130, (proc.returncode, err)  # stopped like Ctrl-C, not killed mid-write
+        text = err.decode()
+        assert text.rstrip().endswith("pellucid: interrupted") and "Traceback" not in text, text
+        assert _alive(workers) == []  # reaped by the parent before it exited
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+        for pid in _alive(workers):
+            os.kill(pid, signal.SIGKILL)
+    with Store(tmp_path / "store") as store:
+        (run,) = store.list_runs()
+        assert run.status == "interrupted" and store.recovered == []

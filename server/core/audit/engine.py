@@ -9,12 +9,25 @@
 
 Shards come back in completion order; the caller stores each one as it arrives. Every engine
 runs the same function on the same inputs with the same thread count, so results are equal.
+
+Worker processes never outlive the audit. Each one asks the kernel to kill it when its parent
+dies (``prctl(PR_SET_PDEATHSIG)`` on Linux) and also watches its parent's process id (the
+portable fallback, and a guard for a parent that died before the request was made); it ignores
+Ctrl-C, which the parent handles. When the map ends early (an error, a cancel, Ctrl-C, or a stop
+request, which :func:`stop_requests_interrupt` turns into KeyboardInterrupt), the parent
+terminates the workers still busy instead of waiting for their shards.
 """
 
 from __future__ import annotations
 
+import contextlib
+import ctypes
 import multiprocessing
 import os
+import signal
+import sys
+import threading
+import time
 from collections.abc import Iterator
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 
@@ -23,10 +36,71 @@ from pellucid.core.errors import BadParameterError, Cancelled
 from pellucid.core.model.loading import LoadedModel
 from pellucid.core.progress import CancelToken
 
-__all__ = ["ENGINES", "ray_available", "run_shards"]
+__all__ = ["ENGINES", "ray_available", "run_shards", "stop_requests_interrupt"]
 
 ENGINES = ("local", "ray")
 _POLL_SECONDS = 0.2
+_PARENT_CHECK_SECONDS = 0.5
+_PR_SET_PDEATHSIG = 1  # from <linux/prctl.h>
+_TERMINATE_GRACE_SECONDS = 5.0
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    """Worker initializer: end this process when the parent process ends (see the module docstring)."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C reaches the whole group; the parent decides
+    if sys.platform.startswith("linux"):
+        try:
+            ctypes.CDLL(None, use_errno=True).prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
+        except (OSError, AttributeError):
+            pass  # no prctl here: the watcher below still ends the process
+    if os.getppid() != parent_pid:
+        os._exit(1)
+    threading.Thread(target=_watch_parent, args=(parent_pid,), name="pellucid-parent-watch", daemon=True).start()
+
+
+def _watch_parent(parent_pid: int) -> None:
+    # The kernel's death signal fires when the *thread* that started us ends, and not at all off
+    # Linux; the parent's id changing (to init or a subreaper) is the fact that matters.
+    while True:
+        if os.getppid() != parent_pid:
+            os._exit(1)
+        time.sleep(_PARENT_CHECK_SECONDS)
+
+
+def _raise_interrupt(signum: int, _frame: object) -> None:
+    raise KeyboardInterrupt(f"stopped by signal {signal.Signals(signum).name}")
+
+
+@contextlib.contextmanager
+def stop_requests_interrupt() -> Iterator[None]:
+    """While inside, SIGTERM raises KeyboardInterrupt (as Ctrl-C does), so clean-up code runs.
+
+    Only on the main thread and only when SIGTERM still has its default action (a server that
+    installed its own handler keeps it).
+    """
+    if threading.current_thread() is not threading.main_thread() or \
+            signal.getsignal(signal.SIGTERM) is not signal.SIG_DFL:
+        yield
+        return
+    signal.signal(signal.SIGTERM, _raise_interrupt)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, signal.SIG_DFL)
+
+
+def _terminate(pool: ProcessPoolExecutor) -> None:
+    """End the pool's worker processes now (SIGTERM, then SIGKILL after a grace period) and reap them."""
+    processes = list((getattr(pool, "_processes", None) or {}).values())  # the executor keeps no public list
+    for proc in processes:
+        if proc.is_alive():
+            proc.terminate()
+    deadline = time.monotonic() + _TERMINATE_GRACE_SECONDS
+    for proc in processes:
+        proc.join(max(0.0, deadline - time.monotonic()))
+        if proc.is_alive():
+            proc.kill()
+            proc.join(1.0)
 
 
 def ray_available() -> bool:
@@ -71,20 +145,26 @@ def run_shards(
 def _pool(tasks: list[ShardTask], *, workers: int, cancel: CancelToken | None) -> Iterator[list[ImageOutcome]]:
     # spawn, not fork: forking a process that already runs torch threads can deadlock.
     context = multiprocessing.get_context("spawn")
-    pool = ProcessPoolExecutor(max_workers=min(workers, len(tasks)), mp_context=context)
-    pending: set[Future] = set()
+    pool = ProcessPoolExecutor(max_workers=min(workers, len(tasks)), mp_context=context,
+                               initializer=_die_with_parent, initargs=(os.getpid(),))
+    finished = False
     try:
-        pending = {pool.submit(process_shard, task) for task in tasks}
-        while pending:
-            done, pending = wait(pending, timeout=_POLL_SECONDS, return_when=FIRST_COMPLETED)
-            for future in done:
-                yield future.result()
-            if cancel is not None and cancel.cancelled:
-                raise Cancelled("the audit was cancelled")
+        with stop_requests_interrupt():
+            pending: set[Future] = {pool.submit(process_shard, task) for task in tasks}
+            while pending:
+                done, pending = wait(pending, timeout=_POLL_SECONDS, return_when=FIRST_COMPLETED)
+                for future in done:
+                    yield future.result()
+                if cancel is not None and cancel.cancelled:
+                    raise Cancelled("the audit was cancelled")
+            finished = True
     finally:
-        for future in pending:
-            future.cancel()
-        pool.shutdown(wait=True, cancel_futures=True)
+        if not finished:
+            # Stopped early: the shards still running are not wanted. No future is cancelled first:
+            # the executor marks every pending one broken when its workers end, and a cancelled one
+            # would make its manager thread fail (Python 3.11).
+            _terminate(pool)
+        pool.shutdown(wait=True)
 
 
 def _ray(tasks: list[ShardTask], *, address: str | None, workers: int,

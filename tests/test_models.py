@@ -6,6 +6,7 @@ import hashlib
 import warnings
 from pathlib import Path
 
+import numpy as np
 import pytest
 import torch
 import torchvision
@@ -128,12 +129,14 @@ def test_dict_output_is_reduced_to_the_named_tensor(tmp_path):
     assert any("'logits'" in n for n in m.notes)
 
 
-def test_nan_outputs_are_refused_at_prediction(tmp_path):
+def test_nan_outputs_are_refused_at_load_and_at_prediction(tmp_path):
     from pellucid.core.views.predict import predict
 
-    m = load_model(spec_file(tmp_path, f'kind = "factory"\nfactory = "{__name__}:build_nan"'))
+    with pytest.raises(ModelLoadError, match="returns NaN or infinite logits") as info:
+        load_model(spec_file(tmp_path, f'kind = "factory"\nfactory = "{__name__}:build_nan"'))
+    assert len(str(info.value).splitlines()) == 1
     with pytest.raises(ModelOutputError, match="NaN or infinite"):
-        predict(m.module, torch.zeros(1, 3, 16, 16), labels=m.labels)
+        predict(build_nan(), torch.zeros(1, 3, 16, 16), labels=["a", "b", "c"])
 
 
 def test_export_archive_keeps_module_tree_for_hooks(tmp_path):
@@ -186,3 +189,171 @@ def test_spec_roundtrip_dict(tmp_path):
     spec = ModelSpec.from_toml(spec_file(tmp_path, f'kind = "factory"\nfactory = "{__name__}:build_small"'))
     d = spec.to_dict()
     assert d["source"]["factory"].endswith(":build_small") and d["input"]["height"] == 16
+
+
+# --- fingerprints, seeds and factory lookup ----------------------------------------------------------------
+
+FACTORY_SOURCE = '''
+from torch import nn
+
+
+def build(num_classes: int = 3) -> nn.Module:
+    return nn.Sequential(nn.Conv2d(3, 4, 3, padding=1), nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Flatten(),
+                         nn.Linear(4, num_classes))
+'''
+
+
+def _documented_factory_fingerprint(weights: Path, factory: str, source: Path, arguments: str) -> str:
+    # The rule written in README.md ("Fingerprints") and core/model/loading.py, recomputed here by hand.
+    text = "\n".join(["pellucid-factory-fingerprint/1", f"weights {hashlib.sha256(weights.read_bytes()).hexdigest()}",
+                      f"factory {factory}", f"source {hashlib.sha256(source.read_bytes()).hexdigest()}",
+                      f"arguments {arguments}"]) + "\n"
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _factory_folder(folder: Path, module: str, source: str = FACTORY_SOURCE) -> Path:
+    """A spec folder with its own factory module beside spec.toml (not on sys.path) and weights."""
+    import importlib.util
+    import sys
+
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / f"{module}.py").write_text(source, encoding="utf-8")
+    spec = importlib.util.spec_from_file_location(f"_scratch_{module}", folder / f"{module}.py")
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    torch.manual_seed(1)
+    save_file(mod.build().state_dict(), str(folder / "w.safetensors"))
+    sys.modules.pop(module, None)
+    p = folder / "spec.toml"
+    p.write_text(f'name = "t"\n[source]\nkind = "factory"\nfactory = "{module}:build"\nweights = "w.safetensors"\n'
+                 f'arguments = {{ num_classes = 3 }}\n[input]\nheight = 16\nwidth = 16\n[output]\nlabels = {LABELS}\n')
+    return p
+
+
+def test_factory_module_is_found_beside_the_spec_and_fingerprinted_with_its_source(tmp_path):
+    import sys
+
+    path_before = list(sys.path)
+    spec = _factory_folder(tmp_path / "model", "beside_spec_net")
+    m = load_model(spec)
+    assert sys.path == path_before  # the spec's folder was on sys.path only while importing
+    expected = _documented_factory_fingerprint(tmp_path / "model" / "w.safetensors", "beside_spec_net:build",
+                                               tmp_path / "model" / "beside_spec_net.py", '{"num_classes": 3}')
+    assert m.fingerprint == expected
+    assert m.fingerprint != hashlib.sha256((tmp_path / "model" / "w.safetensors").read_bytes()).hexdigest()
+    assert "factory source" in m.summary()["fingerprint_covers"]
+
+    # Same weights, changed factory code (the head now halves the logits): a different model, a different print.
+    (tmp_path / "model" / "beside_spec_net.py").write_text(
+        FACTORY_SOURCE.replace("nn.Linear(4, num_classes))", "nn.Linear(4, num_classes), nn.Hardtanh(-0.5, 0.5))"),
+        encoding="utf-8")
+    sys.modules.pop("beside_spec_net", None)
+    changed = load_model(spec)
+    assert changed.fingerprint != m.fingerprint
+
+
+def test_two_specs_with_the_same_module_name_get_their_own_factories(tmp_path):
+    a = load_model(_factory_folder(tmp_path / "a", "same_name_net"))
+    b = load_model(_factory_folder(tmp_path / "b", "same_name_net",
+                                   FACTORY_SOURCE.replace("nn.Conv2d(3, 4, 3", "nn.Conv2d(3, 4, 5")))
+    assert a.module[0].kernel_size == (3, 3) and b.module[0].kernel_size == (5, 5)
+
+
+def test_missing_factory_module_says_where_it_looked(tmp_path):
+    spec = spec_file(tmp_path, 'kind = "factory"\nfactory = "no_such_module_anywhere:build"')
+    with pytest.raises(ModelLoadError, match="looked in the spec's folder"):
+        load_model(spec)
+
+
+def test_torchvision_without_weights_is_seeded_and_says_so(tmp_path):
+    src = 'kind = "torchvision"\narchitecture = "resnet18"\narguments = { num_classes = 3 }'
+    a = load_model(spec_file(tmp_path, src, size=32))
+    b = load_model(spec_file(tmp_path, src, size=32))
+    c = load_model(spec_file(tmp_path, src + "\nseed = 7", size=32))
+    assert a.fingerprint == b.fingerprint != c.fingerprint
+    x = torch.randn(1, 3, 32, 32)
+    with torch.inference_mode():
+        assert torch.equal(a.module(x), b.module(x))
+    assert any("seed 0" in n and "random initial weights" in n for n in a.notes)
+    # torch's global generator is left as it was
+    torch.manual_seed(123)
+    expected = torch.rand(3)
+    torch.manual_seed(123)
+    load_model(spec_file(tmp_path, src, size=32))
+    assert torch.equal(torch.rand(3), expected)
+
+
+@pytest.mark.parametrize("argument", ['weights = "IMAGENET1K_V1"', "pretrained = true"])
+def test_arguments_that_would_fetch_weights_are_refused(tmp_path, argument):
+    spec = spec_file(tmp_path, f'kind = "torchvision"\narchitecture = "resnet18"\narguments = {{ {argument} }}',
+                     size=32)
+    with pytest.raises(ModelLoadError, match="never downloads weights"):
+        load_model(spec)
+
+
+# --- export archives traced at batch 1, TorchScript capabilities --------------------------------------------
+
+
+class ViewNet(nn.Module):
+    """Flattens with x.view(x.size(0), -1): torch.export at batch 1 bakes the batch size into the graph."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        torch.manual_seed(0)
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.pool = nn.AdaptiveAvgPool2d(2)
+        self.head = nn.Linear(16, 3)
+
+    def forward(self, x):
+        y = self.pool(torch.relu(self.conv(x)))
+        return self.head(y.view(x.size(0), -1))
+
+
+def test_export_archive_with_batch_fixed_at_one_runs_every_method(tmp_path):
+    from pellucid.core.attribution import Normalization, compute_attribution, method_names
+    from pellucid.core.occlusion.engine import occlusion_map
+
+    net = ViewNet().eval()
+    torch.export.save(torch.export.export(net, (torch.zeros(1, 3, 16, 16),)), str(tmp_path / "m.pt2"))
+    m = load_model(spec_file(tmp_path, 'kind = "export"\nweights = "m.pt2"'))
+    assert m.batch_fixed and m.summary()["batch_fixed"] is True
+    assert any("batch fixed at 1" in n for n in m.notes)
+    x = torch.randn(5, 3, 16, 16)
+    with torch.inference_mode():
+        assert torch.allclose(m.module(x), net(x), atol=1e-6)  # a batch of 5, one image at a time
+    one = x[:1]
+    # Every registered method runs (small settings keep it quick); occlusion agrees with the eager model.
+    small = {"rise": {"masks": 16}, "smoothgrad": {"samples": 4}, "integrated_gradients": {"steps": 8},
+             "occlusion": {"patch": 4, "stride": 4}}
+    for name in method_names():
+        amap = compute_attribution(name, m.module, one, params=small.get(name),
+                                   normalization=Normalization.of((0.0, 0.0, 0.0), (1.0, 1.0, 1.0)))
+        assert amap.map.shape == (16, 16) and np.isfinite(amap.map).all(), name
+    ours = occlusion_map(m.module, one, target=0, patch=4, stride=4, method="auto").drop
+    ref = occlusion_map(net, one, target=0, patch=4, stride=4, method="naive").drop
+    assert np.allclose(ours, ref, atol=1e-5)
+
+
+def test_export_archive_with_a_dynamic_batch_is_not_looped(tmp_path):
+    net = small_net().eval()
+    batch = torch.export.Dim("batch", min=1, max=1024)
+    program = torch.export.export(net, (torch.zeros(2, 3, 16, 16),), dynamic_shapes=({0: batch},))
+    torch.export.save(program, str(tmp_path / "m.pt2"))
+    m = load_model(spec_file(tmp_path, 'kind = "export"\nweights = "m.pt2"'))
+    assert not m.batch_fixed and m.summary()["batch"] == "any size"
+
+
+def test_torchscript_refuses_hook_methods_up_front_and_runs_the_others(tmp_path):
+    from pellucid.core.attribution import check_request, compute_attribution
+    from pellucid.core.errors import BadParameterError
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FutureWarning)
+        torch.jit.script(small_net().eval()).save(str(tmp_path / "m.ts"))
+    m = load_model(spec_file(tmp_path, 'kind = "torchscript"\nweights = "m.ts"'))
+    for call in (lambda: check_request("gradcam", m.module, m.input_shape, {}),
+                 lambda: compute_attribution("gradcam", m.module, torch.zeros(1, 3, 16, 16))):
+        with pytest.raises(BadParameterError, match="unavailable for TorchScript: needs forward hooks"):
+            call()
+    amap = compute_attribution("gradient", m.module, torch.randn(1, 3, 16, 16))
+    assert np.abs(amap.map).sum() > 0

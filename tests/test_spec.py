@@ -40,7 +40,7 @@ def test_minimal_spec_gets_defaults(tmp_path):
     "text, fragment",
     [
         (BASE + "colour = 1\n", "unknown key(s) colour"),
-        (BASE.replace('kind = "torchvision"', 'kind = "onnx"'), "kind must be one of"),
+        (BASE.replace('kind = "torchvision"', 'kind = "keras"'), "kind must be one of"),
         (BASE.replace("height = 32", 'height = "32"'), "height must be a int"),
         (BASE.replace("height = 32", "height = 0"), "between 1 and 8192"),
         (BASE + "[preprocess]\nmean = [0.5]\n", "list of 3 numbers"),

@@ -9,7 +9,7 @@ import time
 import numpy as np
 import pytest
 import torch
-from conftest import TINY_LABELS, TINY_SIZE, png_bytes, synthetic_tile
+from conftest import TINY_LABELS, TINY_MODULE, TINY_SIZE, png_bytes, synthetic_tile
 from PIL import Image
 
 TILE = png_bytes(synthetic_tile(seed=11, tagged=True))
@@ -75,7 +75,12 @@ def test_model_list_and_summary(client, tiny_spec) -> None:
     assert body["models"][0]["has_samples"] is True
     s = client.get("/api/models/tiny").json()
     weights = (tiny_spec.parent / "weights.safetensors").read_bytes()
-    assert s["fingerprint"] == hashlib.sha256(weights).hexdigest()
+    # A factory model's fingerprint covers its weights and its factory's source (README, "Fingerprints").
+    source = (tiny_spec.parent.parent / "_modules" / f"{TINY_MODULE}.py").read_bytes()
+    text = "\n".join(["pellucid-factory-fingerprint/1", f"weights {hashlib.sha256(weights).hexdigest()}",
+                      f"factory {TINY_MODULE}:tiny_net", f"source {hashlib.sha256(source).hexdigest()}",
+                      "arguments {}"]) + "\n"
+    assert s["fingerprint"] == hashlib.sha256(text.encode()).hexdigest()
     assert s["labels"] == list(TINY_LABELS)
     assert s["input_shape"] == [3, TINY_SIZE, TINY_SIZE]
     assert s["conv_layers"] == ["features.conv1", "features.conv2"]

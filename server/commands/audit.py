@@ -11,11 +11,12 @@ import json
 import shlex
 import sys
 from pathlib import Path
-from typing import Any
-
-import numpy as np
+from typing import TYPE_CHECKING, Any
 
 from pellucid.commands._progress import ProgressBar
+
+if TYPE_CHECKING:
+    import numpy as np
 
 EXIT_OK, EXIT_GATE_FAILED = 0, 1
 
@@ -38,7 +39,8 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="thresholds to gate on (see the README's policy keys); without it the audit only reports")
     p.add_argument("--out", type=Path, required=True, metavar="DIR", help="folder for summary.json (and the report)")
     p.add_argument("--method", default=None, help="attribution method (default: the policy's [audit] method, "
-                   "else gradcam); 'pellucid inspect --list-methods' lists them")
+                   "else gradcam, or occlusion for models without forward hooks such as TorchScript); "
+                   "'pellucid inspect --list-methods' lists them")
     p.add_argument("--param", action="append", default=[], metavar="KEY=VALUE",
                    help="a parameter of the method, e.g. stride=16 for occlusion (repeatable)")
     p.add_argument("--target", choices=("label", "predicted"), default=None,
@@ -73,6 +75,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--report", action="store_true", help="also write report.html and report.pdf into --out")
     p.add_argument("--trust-pickled", action="store_true", help="allow model specs of kind 'pickled'")
     p.set_defaults(func=_audit)
+    p.add_argument("-q", "--quiet", action="store_true",
+                   help="no progress output (a bar on a terminal, else a line every few seconds)")
 
 
 def _pair(text: str, what: str, n: int) -> tuple[int, ...]:
@@ -103,6 +107,8 @@ def _params(items: list[str]) -> dict[str, str]:
 
 def _read_patch(path: Path) -> np.ndarray:
     from pellucid.core.model.preprocess import read_image
+    import numpy as np
+
 
     return np.asarray(read_image(path).pil.convert("RGB"), dtype=np.uint8).copy()
 
@@ -175,11 +181,11 @@ def _command(args: argparse.Namespace) -> str:
 
 
 def _resolve_method(args: argparse.Namespace, policy: Any) -> None:
-    """Command line first, then the policy's [audit] table, then Grad-CAM."""
+    """Command line first, then the policy's [audit] table; else left None for :func:`_default_method`."""
     from_policy = policy is not None and policy.method is not None
-    if args.method is None:
-        args.method = policy.method if from_policy else "gradcam"
-        if from_policy and not args.param:
+    if args.method is None and from_policy:
+        args.method = policy.method
+        if not args.param:
             args.param = [f"{k}={v}" for k, v in policy.params.items()]
     elif from_policy and args.method != policy.method:
         print(f"note: policy {policy.name!r} sets its thresholds for method {policy.method!r}; this audit uses "
@@ -188,19 +194,25 @@ def _resolve_method(args: argparse.Namespace, policy: Any) -> None:
         args.target = (policy.target if policy is not None and policy.target else None) or "label"
 
 
-def _interactive() -> bool:
-    return hasattr(sys.stderr, "isatty") and sys.stderr.isatty()
+def _default_method(args: argparse.Namespace, model: Any) -> None:
+    """Grad-CAM, or occlusion for a model without forward hooks (TorchScript), which Grad-CAM needs."""
+    if args.method is not None:
+        return
+    args.method = "gradcam" if model.supports_hooks else "occlusion"
+    if not model.supports_hooks and not args.quiet:
+        print("note: Grad-CAM is unavailable for TorchScript: needs forward hooks; this audit uses occlusion",
+              file=sys.stderr)
 
 
 class _Phases:
-    """One progress bar per phase of the audit."""
+    """One progress display per phase of the audit (a bar on a terminal, plain lines elsewhere)."""
 
-    def __init__(self) -> None:
+    def __init__(self, *, quiet: bool = False) -> None:
+        self.quiet = quiet
         self.bar: ProgressBar | None = None
 
     def phase(self, name: str) -> None:
-        # Bars only on a terminal: in logs and pipes stderr stays for errors (one line each).
-        self.bar = ProgressBar(f"{name:>15}") if _interactive() else None
+        self.bar = ProgressBar(name, quiet=self.quiet)
 
     def __call__(self, done: int, total: int) -> None:
         if self.bar is not None:
@@ -221,15 +233,20 @@ def _audit(args: argparse.Namespace) -> int:
 
     if args.out.exists() and not args.out.is_dir():
         raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")
+    from pellucid.core.provenance import provenance
     policy = load_policy(args.policy) if args.policy else None
     _resolve_method(args, policy)
-    # Fail on a wrong method or parameter before reading any file.
-    settings = AuditSettings(method=args.method, params=_params(args.param), target=args.target,
-                             shard_size=args.shard_size, threads=args.threads).validated()
+    params = _params(args.param)
+    if args.method is not None:  # fail on a wrong method or parameter before loading anything
+        AuditSettings(method=args.method, params=params, target=args.target,
+                      shard_size=args.shard_size, threads=args.threads).validated()
     store = Store(args.store or default_data_dir())
     try:
         model = load_model(resolve_model_ref(args.model), trust_pickled=args.trust_pickled)
-        phases = _Phases()
+        _default_method(args, model)
+        settings = AuditSettings(method=args.method, params=params, target=args.target,
+                                 shard_size=args.shard_size, threads=args.threads).validated()
+        phases = _Phases(quiet=args.quiet)
         phases.phase("reading files")
         dataset = load_dataset(args.data, progress=phases)
         for s in dataset.skipped:
@@ -253,6 +270,7 @@ def _audit(args: argparse.Namespace) -> int:
             "run": outcome.run.to_dict(with_summary=False),
             "resumed": outcome.resumed,
             "images_reused": outcome.reused,
+            "provenance": provenance(),
             "images_computed": outcome.computed,
             "model": model.summary(),
             "dataset": dataset.summary(),
@@ -303,6 +321,8 @@ def _json_default(value: Any) -> Any:
     if isinstance(value, np.generic):
         return value.item()
     if isinstance(value, np.ndarray):
+    import numpy as np
+
         return value.tolist()
     if isinstance(value, (Path, tuple)):
         return str(value) if isinstance(value, Path) else list(value)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import time
 from pathlib import Path
 from typing import Any
@@ -14,6 +15,9 @@ CAUTION = (
     "Attribution maps are evidence about this model on this image, not proof of what it has learned; "
     "deployment decisions follow the reviewer's domain rules and sign-off."
 )
+# Pictures of the input, overlays and maps are enlarged by pixel repetition (nearest neighbour, no
+# smoothing, so every model pixel stays a crisp square) until the long side reaches this many pixels.
+READABLE_SIDE = 384
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -55,6 +59,7 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="run the cascading-randomisation sanity check (Adebayo et al. 2018) for each --method")
     p.add_argument("--list-methods", action="store_true", help="list attribution methods and their parameters")
     p.add_argument("--trust-pickled", action="store_true", help="allow specs of kind 'pickled'")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress output for the long methods")
     p.set_defaults(func=_inspect)
 
 
@@ -90,13 +95,14 @@ def _inspect(args: argparse.Namespace) -> int:
         from pellucid.core.errors import BadParameterError
 
         raise BadParameterError("inspect needs an IMAGE and --out DIR (or --list-methods)")
-    from pellucid.core.attribution import Normalization, compute_attribution, get_method
+    from pellucid.core.attribution import Normalization, check_request, compute_attribution, get_method
     from pellucid.core.errors import BadParameterError, UnsupportedLayerError
     from pellucid.core.model.bundled import resolve_model_ref
     from pellucid.core.model.layers import layer_map
-    from pellucid.core.model.loading import load_model
+    from pellucid.core.model.loading import TORCHSCRIPT_NOTE, load_model
     from pellucid.core.model.preprocess import prepare, read_image
     from pellucid.core.occlusion.engine import occlusion_map
+    from pellucid.core.provenance import provenance
     from pellucid.core.views import render
     from pellucid.core.views.activations import activations_with_prediction
     from pellucid.core.views.kernels import channel_grid, kernel_view, rgb_grid
@@ -109,6 +115,8 @@ def _inspect(args: argparse.Namespace) -> int:
 
     image = read_image(args.image)
     model = load_model(resolve_model_ref(args.model), trust_pickled=args.trust_pickled)
+    for name in args.method:  # e.g. Grad-CAM on TorchScript: one sentence before any work
+        check_request(name, model.module, model.input_shape, params.get(name))
     prepared = prepare(model.spec, image)
     x = prepared.tensor
     target = model.class_index(args.target) if args.target is not None else None
@@ -117,18 +125,34 @@ def _inspect(args: argparse.Namespace) -> int:
         raise BadParameterError(f"--out {str(out)!r} exists and is not a folder")
     out.mkdir(parents=True, exist_ok=True)
     written: dict[str, str] = {}
+    pictures: dict[str, dict[str, Any]] = {}
+    in_h, in_w = prepared.display.shape[:2]
+    factor = max(1, math.ceil(READABLE_SIDE / max(in_h, in_w)))
 
     def save(name: str, data: bytes) -> None:
         (out / name).write_bytes(data)
         written[name.rsplit(".", 1)[0]] = name
 
-    save("input.png", render.encode_png(prepared.display))
+    def save_picture(name: str, image: Any, scaling: str) -> None:
+        """An input-sized picture, enlarged ×factor by pixel repetition; result.json says how."""
+        big = render.upscale_nearest(image, factor)
+        save(name, render.encode_png(big))
+        pictures[name] = {"size": [int(big.shape[0]), int(big.shape[1])], "input_size": [in_h, in_w],
+                          "enlarged": factor, "resampling": "nearest neighbour (pixel repetition)",
+                          "scaling": scaling}
+
+    save_picture("input.png", prepared.display, "the model's input after resizing and cropping, before "
+                 "normalisation")
     result: dict[str, Any] = {
         "tool": "pellucid",
+        "provenance": provenance(),
         "caution": CAUTION,
         "model": model.summary(),
         "image": {"path": str(args.image.resolve()), "sha256": image.sha256, "size": list(image.original_size),
                   "mode": image.original_mode, "format": image.format, "notes": prepared.notes},
+        "display": {"input_size": [in_h, in_w], "enlarged": factor, "readable_side": READABLE_SIDE,
+                    "rule": "input-sized pictures are enlarged by the smallest whole factor that makes the long side "
+                            f"at least {READABLE_SIDE} px, by pixel repetition (no smoothing)"},
     }
 
     lmap = None
@@ -143,11 +167,22 @@ def _inspect(args: argparse.Namespace) -> int:
             grid = channel_grid(view, zoom=None)
         save("kernels.png", render.encode_png(grid.image))
         result["kernels"] = view.to_dict()
+        pictures["kernels.png"] = {
+            "size": [int(grid.image.shape[0]), int(grid.image.shape[1])], "layer": first.name,
+            "resampling": f"nearest neighbour, each weight drawn as {grid.zoom}×{grid.zoom} px",
+            "scaling": ("each tile scaled to its own largest |weight|: 128 + 127·w / max|w|, so 0 is mid-grey; "
+                        "the scales are the max|w| of each tile, in tile order") if grid.scales is not None else
+                       ("one diverging scale shared by every tile, symmetric around 0, over value_range"),
+            **grid.to_dict(),
+        }
         layer = args.layer or lmap.last_conv().name
         acts, pred = activations_with_prediction(model.module, x, layer=layer, labels=model.labels,
                                                  output_kind=model.output_kind, k=args.top)
         grid_img, layout = render.activation_grid(acts.maps, order=acts.order(args.sort))
         save(f"activations_{_safe(layer)}.png", render.encode_png(grid_img))
+        pictures[f"activations_{_safe(layer)}.png"] = {
+            "size": [int(grid_img.shape[0]), int(grid_img.shape[1])], "layer": layer,
+            "scaling": "each channel scaled to its own [min, max]", "layout": layout.to_dict()}
         result["activations"] = {
             "layer": layer, "sort": args.sort, "output_shape": list(acts.output_shape),
             "layout": layout.to_dict(), "scale": "each channel scaled to its own [min, max]",
@@ -158,7 +193,7 @@ def _inspect(args: argparse.Namespace) -> int:
         from pellucid.core.views.predict import predict
 
         pred = predict(model.module, x, labels=model.labels, output_kind=model.output_kind, k=args.top)
-        result["layer_views"] = model.notes[-1] if model.notes else "layer views unavailable for this model"
+        result["layer_views"] = TORCHSCRIPT_NOTE
     result["prediction"] = pred.to_dict()
     explained = target if target is not None else pred.top[0].index
 
@@ -170,11 +205,14 @@ def _inspect(args: argparse.Namespace) -> int:
         stride = args.stride or max(1, patch // 2)
         t0 = time.perf_counter()
         occ = occlusion_map(model.module, x, target=explained, patch=patch, stride=stride, baseline=args.baseline,
-                            output=model.output_kind, method=args.engine, progress=ProgressBar("occlusion"))
+                            output=model.output_kind, method=args.engine,
+                            progress=ProgressBar("occlusion", quiet=args.quiet))
         lo, hi = render.value_range(occ.drop, signed=True)
-        save("occlusion_overlay.png", render.encode_png(
-            render.overlay(prepared.display, occ.drop, cmap=render.SIGNED_CMAP, vmin=lo, vmax=hi)))
-        save("occlusion_map.png", render.map_png(occ.drop, signed=True))
+        range_text = f"diverging colours symmetric around 0 over [{lo:.4g}, {hi:.4g}] (drop in probability)"
+        save_picture("occlusion_overlay.png", render.overlay(prepared.display, occ.drop, cmap=render.SIGNED_CMAP,
+                                                             vmin=lo, vmax=hi), range_text + ", blended over the input")
+        save_picture("occlusion_map.png", render.colorize(occ.drop, cmap=render.SIGNED_CMAP, vmin=lo, vmax=hi),
+                     range_text)
         save("occlusion_colorbar.png", render.colorbar_png(
             vmin=lo, vmax=hi, cmap=render.SIGNED_CMAP, label=f"drop in p({model.labels[explained]})"))
         maps["occlusion"] = {**occ.parameters(), "wall_seconds": time.perf_counter() - t0,
@@ -185,12 +223,14 @@ def _inspect(args: argparse.Namespace) -> int:
     for name in args.method:
         amap = compute_attribution(name, model.module, x, target=explained, params=params.get(name),
                                    output_kind=model.output_kind, normalization=norm,
-                                   progress=ProgressBar(name))
+                                   progress=ProgressBar(name, quiet=args.quiet))
         lo, hi = render.value_range(amap.map, signed=amap.signed)
         cmap = render.SIGNED_CMAP if amap.signed else render.MAGNITUDE_CMAP
-        save(f"{name}_overlay.png", render.encode_png(
-            render.overlay(prepared.display, amap.map, cmap=cmap, vmin=lo, vmax=hi)))
-        save(f"{name}_map.png", render.map_png(amap.map, signed=amap.signed))
+        range_text = (f"diverging colours symmetric around 0 over [{lo:.4g}, {hi:.4g}]" if amap.signed
+                      else f"magnitude colours over the map's [min, max] = [{lo:.4g}, {hi:.4g}]")
+        save_picture(f"{name}_overlay.png", render.overlay(prepared.display, amap.map, cmap=cmap, vmin=lo, vmax=hi),
+                     range_text + ", blended over the input")
+        save_picture(f"{name}_map.png", render.colorize(amap.map, cmap=cmap, vmin=lo, vmax=hi), range_text)
         maps[name] = amap.summary()
         computed[name] = amap.map
         if amap.warning:
@@ -202,7 +242,7 @@ def _inspect(args: argparse.Namespace) -> int:
         from pellucid.core.views.figures import faithfulness_png
 
         scores = {name: faithfulness(model.module, x, amap, target=explained, output_kind=model.output_kind,
-                                     progress=ProgressBar(f"faithfulness {name}"))
+                                     progress=ProgressBar(f"faithfulness {name}", quiet=args.quiet))
                   for name, amap in computed.items()}
         save("faithfulness.png", faithfulness_png(scores, label=model.labels[explained]))
         result["faithfulness"] = {name: res.to_dict() for name, res in scores.items()}
@@ -215,12 +255,13 @@ def _inspect(args: argparse.Namespace) -> int:
         for name in args.method:
             check = sanity_check(name, model.module, x, target=explained, params=params.get(name),
                                  output_kind=model.output_kind, normalization=norm,
-                                 progress=ProgressBar(f"sanity {name}"))
+                                 progress=ProgressBar(f"sanity {name}", quiet=args.quiet))
             save(f"sanity_{name}.png", sanity_png(check))
             checks[name] = check.to_dict()
             print(f"sanity check {name}: {check.verdict} — {check.reason}")
         result["sanity"] = checks
     result["files"] = written
+    result["pictures"] = pictures
     (out / "result.json").write_text(json.dumps(result, indent=2, default=_json_default) + "\n", encoding="utf-8")
 
     top = ", ".join(f"{c.label} {c.probability:.3f}" for c in pred.top[:3])

@@ -208,6 +208,7 @@ register(Method(
     reference="Selvaraju et al., Grad-CAM, ICCV 2017, §3",
     signed=False,
     needs_conv_layer=True,
+    needs_hooks=True,
     cost=lambda params, size: 3.0,
     check=_check,
 ))

@@ -85,6 +85,7 @@ class Method:
     # check(model, (C, H, W), validated params) raises a PellucidError for a request that cannot
     # work on this model, so the web answers 4xx and the CLI exits 2 before any job starts.
     check: Callable[[nn.Module, tuple[int, int, int], dict[str, Any]], None] | None = None
+    needs_hooks: bool = False  # forward hooks on a layer: unavailable on TorchScript modules
 
     def describe(self) -> dict[str, Any]:
         cost_224 = float(self.cost(self.schema.validate({}), (224, 224)))
@@ -97,6 +98,7 @@ class Method:
             "stochastic": self.stochastic,
             "needs_conv_layer": self.needs_conv_layer,
             "uses_gradients": self.uses_gradients,
+            "needs_hooks": self.needs_hooks,
             "params": self.schema.describe(),
             "cost_at_defaults_224": cost_224,
         }
@@ -139,10 +141,19 @@ def check_request(name: str, model: nn.Module, input_shape: tuple[int, int, int]
     BadParameterError, UnsupportedLayerError or UnknownMethodError with one sentence.
     """
     method = get_method(name)
+    _check_hooks(method, model)
     checked = method.schema.validate(params, method=method.name)
     if method.check is not None:
         method.check(model, tuple(input_shape), dict(checked))
     return dict(checked)
+
+
+def _check_hooks(method: Method, model: nn.Module) -> None:
+    from pellucid.core.model.loading import hooks_supported
+
+    if method.needs_hooks and not hooks_supported(model):
+        raise BadParameterError(f"{method.title} is unavailable for TorchScript: needs forward hooks "
+                                "(export the model with torch.export and use kind = \"export\" to see layers)")
 
 
 def list_methods() -> list[dict[str, Any]]:
@@ -174,6 +185,7 @@ def compute_attribution(
     The model's eval/train flags are restored afterwards; its weights are not modified.
     """
     spec = get_method(method)
+    _check_hooks(spec, model)
     x = _common.match_dtype(model, _common.check_input(x))
     output_kind = _common.check_output_kind(output_kind)
     checked = spec.schema.validate(params, method=spec.name)

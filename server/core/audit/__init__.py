@@ -11,31 +11,56 @@ An audit is evidence about this model on these images, not proof; deployment dec
 domain's own rules and sign-off.
 """
 
-from pellucid.core.audit.dataset import Dataset, DatasetItem, SkippedFile, load_dataset
-from pellucid.core.audit.engine import ENGINES, ray_available, run_shards
-from pellucid.core.audit.featvis import FeatureVisual, colour_sqrt, feature_visual
-from pellucid.core.audit.gallery import ChannelGallery, channel_gallery
-from pellucid.core.audit.injection import (
-    InjectionResult,
-    SwapResult,
-    background_swap_test,
-    crop_patch,
-    injection_test,
-    paste,
-)
-from pellucid.core.audit.measures import (
-    CORNERS,
-    REGIONS,
-    ImageMeasures,
-    RegionLayout,
-    energy_pointing,
-    measure_map,
-    pointing_hit,
-    region_masks,
-    share_inside,
-)
-from pellucid.core.audit.runner import CAUTION, AuditOutcome, run_audit, run_settings
-from pellucid.core.audit.settings import AuditSettings, GallerySpec, InjectionSpec
+# Names load on first use (PEP 562), so commands that only read the store (runs, report) do not
+# import torch and the attribution methods.
+_EXPORTS = {
+    "AuditOutcome": "pellucid.core.audit.runner",
+    "AuditSettings": "pellucid.core.audit.settings",
+    "CAUTION": "pellucid.core.audit.runner",
+    "CORNERS": "pellucid.core.audit.measures",
+    "ChannelGallery": "pellucid.core.audit.gallery",
+    "Dataset": "pellucid.core.audit.dataset",
+    "DatasetItem": "pellucid.core.audit.dataset",
+    "ENGINES": "pellucid.core.audit.engine",
+    "FeatureVisual": "pellucid.core.audit.featvis",
+    "GallerySpec": "pellucid.core.audit.settings",
+    "ImageMeasures": "pellucid.core.audit.measures",
+    "InjectionResult": "pellucid.core.audit.injection",
+    "InjectionSpec": "pellucid.core.audit.settings",
+    "REGIONS": "pellucid.core.audit.measures",
+    "RegionLayout": "pellucid.core.audit.measures",
+    "SkippedFile": "pellucid.core.audit.dataset",
+    "SwapResult": "pellucid.core.audit.injection",
+    "background_swap_test": "pellucid.core.audit.injection",
+    "channel_gallery": "pellucid.core.audit.gallery",
+    "colour_sqrt": "pellucid.core.audit.featvis",
+    "crop_patch": "pellucid.core.audit.injection",
+    "energy_pointing": "pellucid.core.audit.measures",
+    "feature_visual": "pellucid.core.audit.featvis",
+    "injection_test": "pellucid.core.audit.injection",
+    "load_dataset": "pellucid.core.audit.dataset",
+    "measure_map": "pellucid.core.audit.measures",
+    "paste": "pellucid.core.audit.injection",
+    "pointing_hit": "pellucid.core.audit.measures",
+    "ray_available": "pellucid.core.audit.engine",
+    "region_masks": "pellucid.core.audit.measures",
+    "run_audit": "pellucid.core.audit.runner",
+    "run_settings": "pellucid.core.audit.runner",
+    "run_shards": "pellucid.core.audit.engine",
+    "share_inside": "pellucid.core.audit.measures",
+}
+
+
+def __getattr__(name: str):
+    module = _EXPORTS.get(name)
+    if module is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
 
 __all__ = [
     "CAUTION",

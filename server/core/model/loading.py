@@ -1,15 +1,34 @@
 """Turning a model spec into a loaded, checked model.
 
 A :class:`LoadedModel` travels with everything needed to feed it and to name its results: the
-spec (preprocessing, labels), the fingerprint of its weights, and whether forward hooks work on
-it. Loading checks that the parts agree (label count == logit count, channels == spec) so that a
-mismatch fails here with a plain message instead of producing a wrong map later.
+spec (preprocessing, labels), its fingerprint, and what the loaded module can do: whether forward
+hooks work on it (not on TorchScript) and whether it takes a batch (an export archive traced at
+batch 1 does not, and is then run one image per forward pass). Loading checks that the parts
+agree (label count == logit count, channels == spec, finite logits) so that a mismatch fails here
+with one plain sentence instead of producing a wrong map later.
+
+Fingerprints (sha256, hex):
+
+* a model read from one file (torchvision, timm, export, torchscript, onnx, pickled): the sha256
+  of that file's bytes;
+* a factory model: sha256 over the text ``pellucid-factory-fingerprint/1``, the weights file's
+  sha256 (or, without a weights file, the sha256 of the seeded initial state), the factory
+  reference, the sha256 of the source file that defines the factory function, and its arguments
+  as sorted JSON, one per line. Editing the factory's code therefore changes the fingerprint;
+* a torchvision or timm architecture without weights: the sha256 of its state (parameters and
+  buffers in name order) after seeding with ``[source] seed`` (default 0).
+
+Factory modules are imported with the spec's folder first on ``sys.path``, so a ``model.py``
+beside ``spec.toml`` is found without setting ``PYTHONPATH``.
 """
 
 from __future__ import annotations
 
 import hashlib
 import importlib
+import json
+import sys
+import threading
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -20,6 +39,7 @@ import torch
 from torch import nn
 
 from pellucid.core.errors import ModelLoadError, ModelOutputError, PellucidError
+from pellucid.core.model.formats import check_kind
 from pellucid.core.model.spec import ModelSpec
 
 # Unpickling a full module executes arbitrary code from the file; only an explicit flag allows it.
@@ -28,6 +48,19 @@ PICKLE_REFUSAL = (
     "Pellucid refuses that unless you pass --trust-pickled (CLI) or trust_pickled=True, and only "
     "for files you made yourself. Safer: save a state_dict and use kind = \"torchvision\" or \"factory\"."
 )
+
+TORCHSCRIPT_NOTE = (
+    "TorchScript archive: torch does not support forward hooks on loaded ScriptModules, so the views that "
+    "need them (activation maps, kernels, the layer map, Grad-CAM, channel galleries) are unavailable for "
+    "TorchScript: needs forward hooks. Top-k, occlusion, RISE and the gradient methods work. To see layers, "
+    "export the model with torch.export and use kind = \"export\"."
+)
+ONE_AT_A_TIME_NOTE = (
+    "batch fixed at 1: the model fails on a batch of 2 (an export archive traced at batch 1 does), so Pellucid "
+    "runs it one image per forward pass; every method works, occlusion, RISE and audits more slowly"
+)
+_FINGERPRINT_TAG = "pellucid-factory-fingerprint/1"
+_IMPORT_LOCK = threading.Lock()
 
 
 @dataclass
@@ -46,6 +79,8 @@ class LoadedModel:
     weights_path: Path | None
     load_seconds: float
     notes: list[str] = field(default_factory=list)
+    batch_fixed: bool = False  # True: the module runs one image per forward pass (see ONE_AT_A_TIME_NOTE)
+    fingerprint_covers: str = "weights file"
 
     @property
     def name(self) -> str:
@@ -95,7 +130,10 @@ class LoadedModel:
             "description": self.spec.description,
             "fingerprint": self.fingerprint,
             "weights_path": str(self.weights_path) if self.weights_path else None,
+            "fingerprint_covers": self.fingerprint_covers,
             "supports_hooks": self.supports_hooks,
+            "batch": "fixed at 1 (one image per forward pass)" if self.batch_fixed else "any size",
+            "batch_fixed": self.batch_fixed,
             "num_classes": self.num_classes,
             "input_shape": list(self.input_shape),
             "output_kind": self.output_kind,
@@ -191,9 +229,8 @@ def read_state_dict(path: Path) -> dict[str, torch.Tensor]:
             return load_file(str(path), device="cpu")
         data = torch.load(str(path), map_location="cpu", weights_only=True)
     except Exception as exc:  # noqa: BLE001 - any decoder failure means the same thing to the user
-        detail = str(exc).strip().splitlines()[0][:200] if str(exc).strip() else type(exc).__name__
         raise ModelLoadError(
-            f"could not read weights from {str(path)!r}: not a readable state_dict ({detail}). "
+            f"could not read weights from {str(path)!r}: not a readable state_dict ({_first_line(exc)}). "
             "Expected a .safetensors file or a torch.save(model.state_dict()) file."
         ) from None
     if isinstance(data, dict) and "state_dict" in data and isinstance(data["state_dict"], dict):
@@ -204,6 +241,17 @@ def read_state_dict(path: Path) -> dict[str, torch.Tensor]:
             "If it is a whole pickled model, use kind = \"pickled\" and the trust flag."
         )
     return data
+
+
+def _first_line(exc: BaseException) -> str:
+    """The first line of an exception's message, without torch's advice paragraphs."""
+    text = str(exc).strip()
+    if not text:
+        return type(exc).__name__
+    line = text.splitlines()[0].strip()
+    for cut in (" Please file an issue", " In PyTorch 2.6", " Re-running `torch.load`", " WeightsUnpickler error"):
+        line = line.split(cut)[0]
+    return line[:200].rstrip(" .:") or type(exc).__name__
 
 
 def _apply_state_dict(module: nn.Module, state: dict[str, torch.Tensor], path: Path, spec: ModelSpec) -> None:
@@ -231,89 +279,227 @@ def _apply_state_dict(module: nn.Module, state: dict[str, torch.Tensor], path: P
     module.load_state_dict(state, strict=True)
 
 
-def _import_factory(ref: str) -> Any:
+def _import_factory(ref: str, base_dir: Path | None) -> tuple[Any, Path | None]:
+    """Import ``package.module:function``, the spec's folder first on sys.path; returns (function, source file)."""
     module_name, sep, attr = ref.partition(":")
     if not sep or not module_name or not attr:
         raise ModelLoadError(f"factory must look like 'package.module:function', got {ref!r}")
-    try:
-        module = importlib.import_module(module_name)
-    except ImportError as exc:
-        raise ModelLoadError(f"cannot import {module_name!r} for factory {ref!r}: {exc}") from None
+    top = module_name.split(".")[0]
+    local = base_dir is not None and ((base_dir / f"{top}.py").is_file() or (base_dir / top / "__init__.py").is_file())
+    with _IMPORT_LOCK:
+        try:
+            if local:
+                assert base_dir is not None
+                cached = sys.modules.get(top)
+                where = getattr(cached, "__file__", None)
+                if cached is not None and (where is None or base_dir.resolve() not in Path(where).resolve().parents):
+                    # Another spec's module of the same name was imported first: this spec gets its own.
+                    for name in [n for n in sys.modules if n == top or n.startswith(top + ".")]:
+                        del sys.modules[name]
+                sys.path.insert(0, str(base_dir))
+                try:
+                    module = importlib.import_module(module_name)
+                finally:
+                    sys.path.remove(str(base_dir))
+            else:
+                module = importlib.import_module(module_name)
+        except ImportError as exc:
+            looked = f"the spec's folder {str(base_dir)!r} and " if base_dir is not None else ""
+            raise ModelLoadError(
+                f"cannot import {module_name!r} for factory {ref!r} (looked in {looked}the installed packages): {exc}"
+            ) from None
     fn = getattr(module, attr, None)
     if not callable(fn):
         raise ModelLoadError(f"{module_name!r} has no callable {attr!r} (factory {ref!r})")
-    return fn
+    source = getattr(module, "__file__", None)
+    return fn, Path(source) if source and Path(source).is_file() else None
 
 
-def _build(spec: ModelSpec, weights: Path | None, *, trust_pickled: bool) -> tuple[nn.Module, bool, list[str]]:
-    """Returns (module, supports_hooks, notes)."""
+def _refuse_download_arguments(spec: ModelSpec) -> None:
+    for key in ("weights", "pretrained", "pretrained_cfg", "pretrained_cfg_overlay", "checkpoint_path",
+                "weights_backbone"):
+        if key in spec.source.arguments and spec.source.arguments[key] not in (None, False, ""):
+            raise ModelLoadError(
+                f"model {spec.name!r}: [source] arguments.{key} would fetch or read weights outside the spec; "
+                "Pellucid never downloads weights: give your weights file as [source] weights = \"…\""
+            )
+
+
+def _seeded(spec: ModelSpec, build: Any) -> nn.Module:
+    """Call ``build()`` with torch's global generator seeded from the spec, leaving the caller's state as it was."""
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(spec.source.seed)
+        return build()
+
+
+def _random_weights_note(spec: ModelSpec, what: str) -> str:
+    return (f"no weights file given: {what} runs with random initial weights drawn with seed {spec.source.seed} "
+            "([source] seed), so every load gives the same model; its maps say nothing about a trained model")
+
+
+@dataclass
+class _Built:
+    module: nn.Module
+    supports_hooks: bool = True
+    notes: list[str] = field(default_factory=list)
+    factory_source: Path | None = None
+
+
+def _build(spec: ModelSpec, weights: Path | None, *, trust_pickled: bool) -> _Built:
     kind = spec.source.kind
-    notes: list[str] = []
+    if weights is not None:
+        check_kind(weights, kind)
     if kind == "torchvision":
         import torchvision
 
+        _refuse_download_arguments(spec)
         try:
-            module = torchvision.models.get_model(spec.source.architecture, weights=None, **spec.source.arguments)
+            module = _seeded(spec, lambda: torchvision.models.get_model(spec.source.architecture, weights=None,
+                                                                         **spec.source.arguments))
         except (ValueError, TypeError) as exc:
             known = ", ".join(sorted(torchvision.models.list_models())[:12])
             raise ModelLoadError(
                 f"torchvision cannot build {spec.source.architecture!r} with {spec.source.arguments}: {exc}. "
                 f"Known architectures include {known}, …"
             ) from None
+        built = _Built(module)
         if weights is None:
-            notes.append("no weights file given: the architecture runs with random weights")
+            built.notes.append(_random_weights_note(spec, f"torchvision's {spec.source.architecture}"))
         else:
             _apply_state_dict(module, read_state_dict(weights), weights, spec)
-        return module, True, notes
+        return built
+    if kind == "timm":
+        return _build_timm(spec, weights)
     if kind == "factory":
-        fn = _import_factory(spec.source.factory or "")
+        fn, source = _import_factory(spec.source.factory or "", spec.base_dir)
         try:
-            module = fn(**spec.source.arguments)
+            module = _seeded(spec, lambda: fn(**spec.source.arguments))
         except TypeError as exc:
             raise ModelLoadError(f"factory {spec.source.factory!r} rejected arguments "
                                  f"{spec.source.arguments}: {exc}") from exc
         if not isinstance(module, nn.Module):
             raise ModelLoadError(f"factory {spec.source.factory!r} returned {type(module).__name__}, "
                                  "not a torch nn.Module")
+        built = _Built(module, factory_source=source)
         if weights is None:
-            notes.append("no weights file given: the factory's own initial weights are used")
+            built.notes.append(_random_weights_note(spec, f"the factory {spec.source.factory}"))
         else:
             _apply_state_dict(module, read_state_dict(weights), weights, spec)
-        return module, True, notes
-    assert weights is not None  # the spec parser requires weights for archive kinds
+        return built
+    assert weights is not None  # the spec parser requires weights for the file kinds
+    if kind == "onnx":
+        from pellucid.core.model.onnx_import import load_onnx
+
+        return _Built(load_onnx(weights), notes=[
+            "rebuilt from an ONNX graph as torch modules: layers are named after the exporter's weights or scopes"])
     if kind == "export":
         try:
             program = torch.export.load(str(weights))
             module = torch.export.unflatten(program)
         except Exception as exc:  # noqa: BLE001
-            raise ModelLoadError(f"{str(weights)!r} is not a readable torch.export archive (.pt2): {exc}") from None
-        notes.append("loaded from a torch.export archive: layer types come from the exported graph")
-        return module, True, notes
+            raise ModelLoadError(
+                f"{str(weights)!r} is not a readable torch.export archive (.pt2): {_first_line(exc)}") from None
+        return _Built(module, notes=["loaded from a torch.export archive: layer types come from the exported graph"])
     if kind == "torchscript":
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", FutureWarning)  # torch's TorchScript deprecation notice
                 module = torch.jit.load(str(weights), map_location="cpu")
         except Exception as exc:  # noqa: BLE001
-            raise ModelLoadError(f"{str(weights)!r} is not a readable TorchScript archive: {exc}") from None
-        notes.append(
-            "TorchScript archive: forward hooks are not supported on loaded ScriptModules, so the layer views "
-            "(activations, Grad-CAM, channel galleries) are unavailable; top-k, occlusion and input-gradient "
-            "methods work. To see layers, export the model with torch.export and use kind = \"export\"."
-        )
-        return module, False, notes
+            raise ModelLoadError(
+                f"{str(weights)!r} is not a readable TorchScript archive: {_first_line(exc)}") from None
+        return _Built(module, supports_hooks=False, notes=[TORCHSCRIPT_NOTE])
     if kind == "pickled":
         if not trust_pickled:
             raise ModelLoadError(PICKLE_REFUSAL)
         try:
             module = torch.load(str(weights), map_location="cpu", weights_only=False)
         except Exception as exc:  # noqa: BLE001
-            raise ModelLoadError(f"could not unpickle a model from {str(weights)!r}: {exc}") from None
+            raise ModelLoadError(f"could not unpickle a model from {str(weights)!r}: {_first_line(exc)}") from None
         if not isinstance(module, nn.Module):
             raise ModelLoadError(f"{str(weights)!r} unpickled to {type(module).__name__}, not an nn.Module")
-        notes.append("loaded from a pickled module (trusted by the user's explicit flag)")
-        return module, True, notes
+        return _Built(module, notes=["loaded from a pickled module (trusted by the user's explicit flag)"])
     raise AssertionError(f"spec parser let through source kind {kind!r}")
+
+
+def _build_timm(spec: ModelSpec, weights: Path | None) -> _Built:
+    try:
+        import timm
+    except ImportError:
+        raise ModelLoadError(
+            "kind = \"timm\" needs the optional package timm: pip install 'pellucid[timm]'") from None
+    _refuse_download_arguments(spec)
+    arch = spec.source.architecture or ""
+    if not timm.is_model(arch):
+        close = timm.list_models(f"*{arch.split('_')[0]}*")[:8] if arch else []
+        hint = f"; similar names: {', '.join(close)}" if close else ""
+        raise ModelLoadError(f"timm has no architecture named {arch!r}{hint}")
+    try:
+        # pretrained=False always: the weights come from the spec's file, never from a hub.
+        module = _seeded(spec, lambda: timm.create_model(arch, pretrained=False, **spec.source.arguments))
+    except (TypeError, ValueError, RuntimeError) as exc:
+        raise ModelLoadError(f"timm cannot build {arch!r} with {spec.source.arguments}: {_first_line(exc)}") from None
+    built = _Built(module)
+    if weights is None:
+        built.notes.append(_random_weights_note(spec, f"timm's {arch}"))
+    else:
+        _apply_state_dict(module, read_state_dict(weights), weights, spec)
+    return built
+
+
+class _OneAtATime:
+    """Mixin placed on a loaded module whose forward only accepts a batch of 1: runs each image in turn.
+
+    Changing the instance's class (not wrapping it) keeps every layer name as it was and survives
+    ``copy.deepcopy`` (the sanity check copies models).
+    """
+
+    def forward(self, x: torch.Tensor, *args: Any, **kwargs: Any) -> Any:
+        base = super().forward  # type: ignore[misc]
+        if x.shape[0] == 1:
+            return base(x.contiguous(), *args, **kwargs)
+        outs = [base(x[i : i + 1].contiguous(), *args, **kwargs) for i in range(x.shape[0])]
+        return torch.cat(outs) if isinstance(outs[0], torch.Tensor) else outs[0]
+
+
+_ONE_AT_A_TIME_CLASSES: dict[type, type] = {}
+
+
+def _one_at_a_time(module: nn.Module) -> nn.Module:
+    base = type(module)
+    cls = _ONE_AT_A_TIME_CLASSES.get(base)
+    if cls is None:
+        cls = type(f"OneAtATime{base.__name__}", (_OneAtATime, base), {"__module__": __name__})
+        _ONE_AT_A_TIME_CLASSES[base] = cls
+    module.__class__ = cls
+    return module
+
+
+def hooks_supported(module: nn.Module) -> bool:
+    """Whether forward hooks work on ``module`` (not on a TorchScript module, nor on our wrapper around one)."""
+    while isinstance(module, _SelectOutput):
+        module = module.net
+    return not isinstance(module, torch.jit.ScriptModule)
+
+
+def batch_fixed(module: nn.Module) -> bool:
+    """Whether ``module`` was found to take one image per forward pass at load time."""
+    while isinstance(module, _SelectOutput):
+        module = module.net
+    return isinstance(module, _OneAtATime)
+
+
+def factory_fingerprint(*, weights_sha256: str, factory: str, source: Path | None,
+                        arguments: dict[str, Any]) -> str:
+    """sha256 over the weights' sha256, the factory reference, its source file's sha256 and the arguments."""
+    lines = [
+        _FINGERPRINT_TAG,
+        f"weights {weights_sha256}",
+        f"factory {factory}",
+        f"source {file_sha256(source) if source is not None else 'unavailable'}",
+        f"arguments {json.dumps(arguments, sort_keys=True, default=str)}",
+    ]
+    return hashlib.sha256(("\n".join(lines) + "\n").encode()).hexdigest()
 
 
 def _labels_for(spec: ModelSpec) -> list[str]:
@@ -327,27 +513,41 @@ def _labels_for(spec: ModelSpec) -> list[str]:
     raise AssertionError("spec parser guarantees labels or a builtin label set")
 
 
+def _dry_run(spec: ModelSpec, module: nn.Module, x: torch.Tensor) -> Any:
+    c, h, w = x.shape[1:]
+    try:
+        with torch.inference_mode():
+            return module(x)
+    except PellucidError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - a dry run failure is a spec/model mismatch
+        raise ModelLoadError(
+            f"model {spec.name!r} failed on a {c}×{h}×{w} test input: {_first_line(exc)[:300]}. "
+            "Check [input] height, width and channels in the spec."
+        ) from None
+
+
+def _check_finite(spec: ModelSpec, logits: torch.Tensor, what: str) -> None:
+    if not torch.isfinite(logits).all():
+        raise ModelLoadError(
+            f"model {spec.name!r} returns NaN or infinite logits on {what}, so no view of it would mean anything; "
+            "check the weights file (a diverged training run?) and the spec's [preprocess] mean and std"
+        )
+
+
 def load_model(spec: ModelSpec | str | Path, *, trust_pickled: bool = False) -> LoadedModel:
     """Load and check a model from a spec (or the path of a spec file)."""
     if not isinstance(spec, ModelSpec):
         spec = ModelSpec.from_toml(spec)
     t0 = time.perf_counter()
     weights = resolve_weights_path(spec)
-    module, supports_hooks, notes = _build(spec, weights, trust_pickled=trust_pickled)
+    built = _build(spec, weights, trust_pickled=trust_pickled)
+    module, notes = built.module, list(built.notes)
     module.eval()
     labels = _labels_for(spec)
 
     c, h, w = spec.input.channels, spec.input.height, spec.input.width
-    try:
-        with torch.inference_mode():
-            raw = module(torch.zeros(1, c, h, w))
-    except PellucidError:
-        raise
-    except Exception as exc:  # noqa: BLE001 - a dry run failure is a spec/model mismatch
-        raise ModelLoadError(
-            f"model {spec.name!r} failed on a {c}×{h}×{w} test input: {str(exc).splitlines()[0][:300]}. "
-            "Check [input] height, width and channels in the spec."
-        ) from None
+    raw = _dry_run(spec, module, torch.zeros(1, c, h, w))
     if not isinstance(raw, torch.Tensor):
         _pick_tensor(raw, spec.source.output_key)  # raises when nothing usable
         module = _SelectOutput(module, spec.source.output_key).eval()
@@ -355,8 +555,7 @@ def load_model(spec: ModelSpec | str | Path, *, trust_pickled: bool = False) -> 
             f"the model returns {type(raw).__name__}; Pellucid scores "
             + (f"its {spec.source.output_key!r} entry" if spec.source.output_key else "its first tensor")
         )
-        with torch.inference_mode():
-            raw = module(torch.zeros(1, c, h, w))
+        raw = _dry_run(spec, module, torch.zeros(1, c, h, w))
     if raw.ndim != 2 or raw.shape[0] != 1:
         raise ModelLoadError(
             f"model {spec.name!r} returned a tensor of shape {tuple(raw.shape)}; expected logits of shape (1, K)"
@@ -366,14 +565,48 @@ def load_model(spec: ModelSpec | str | Path, *, trust_pickled: bool = False) -> 
             f"model {spec.name!r} gives {raw.shape[1]} outputs but its spec lists {len(labels)} labels; "
             "they must agree (check labels / labels_file or the model's num_classes)"
         )
-    fingerprint = file_sha256(weights) if weights is not None else state_dict_sha256(module)
+    _check_finite(spec, raw, f"a {c}×{h}×{w} test input of zeros")
+
+    # A batch of two: occlusion, RISE and audits send batches. A module that only takes one image
+    # (an export archive traced at batch 1) is switched to one image per forward pass.
+    generator = torch.Generator().manual_seed(0)
+    pair = torch.randn(2, c, h, w, generator=generator)
+    fixed = False
+    try:
+        with torch.inference_mode():
+            out2 = module(pair)
+        ok = isinstance(out2, torch.Tensor) and tuple(out2.shape) == (2, raw.shape[1])
+    except Exception:  # noqa: BLE001 - any failure here means "not batchable"; batch 1 worked above
+        ok = False
+    if not ok:
+        inner = module.net if isinstance(module, _SelectOutput) else module
+        _one_at_a_time(inner)
+        out2 = _dry_run(spec, module, pair)
+        fixed = True
+        notes.append(ONE_AT_A_TIME_NOTE)
+    _check_finite(spec, out2, "a seeded random test batch")
+
+    if weights is None:
+        weights_sha = state_dict_sha256(module)
+    else:
+        weights_sha = file_sha256(weights)
+    if spec.source.kind == "factory":
+        fingerprint = factory_fingerprint(weights_sha256=weights_sha, factory=spec.source.factory or "",
+                                          source=built.factory_source, arguments=spec.source.arguments)
+        covers = ("weights file" if weights is not None else "seeded initial state") + " + factory source " + (
+            str(built.factory_source) if built.factory_source else "(unavailable)") + " + arguments"
+    else:
+        fingerprint = weights_sha
+        covers = "weights file" if weights is not None else "seeded initial state"
     return LoadedModel(
         spec=spec,
         module=module,
         labels=labels,
         fingerprint=fingerprint,
-        supports_hooks=supports_hooks,
+        supports_hooks=built.supports_hooks and hooks_supported(module),
         weights_path=weights,
         load_seconds=time.perf_counter() - t0,
         notes=notes,
+        batch_fixed=fixed,
+        fingerprint_covers=covers,
     )

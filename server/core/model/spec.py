@@ -15,7 +15,7 @@ from typing import Any
 
 from pellucid.core.errors import SpecError
 
-SOURCE_KINDS = ("torchvision", "factory", "export", "torchscript", "pickled")
+SOURCE_KINDS = ("torchvision", "timm", "onnx", "factory", "export", "torchscript", "pickled")
 OUTPUT_KINDS = ("softmax", "sigmoid")
 INTERPOLATIONS = ("nearest", "bilinear", "bicubic")
 BUILTIN_LABELS = ("imagenet-1k",)
@@ -29,6 +29,7 @@ class SourceSpec:
     arguments: dict[str, Any] = field(default_factory=dict)
     weights: str | None = None
     output_key: str | None = None
+    seed: int = 0  # seeds torch while the architecture or factory builds (random initial weights are reproducible)
 
 
 @dataclass(frozen=True)
@@ -86,7 +87,8 @@ class ModelSpec:
             raise SpecError(f"{where}: name must be letters, digits, '-', '_' or '.', got {name!r}")
 
         src = _table(data, "source", where, required=True)
-        _only_keys(src, {"kind", "architecture", "factory", "arguments", "weights", "output_key"}, f"{where} [source]")
+        _only_keys(src, {"kind", "architecture", "factory", "arguments", "weights", "output_key", "seed"},
+                   f"{where} [source]")
         kind = _typed(src, "kind", str, f"{where} [source]", required=True)
         if kind not in SOURCE_KINDS:
             raise SpecError(f"{where} [source]: kind must be one of {', '.join(SOURCE_KINDS)}, got {kind!r}")
@@ -97,12 +99,15 @@ class ModelSpec:
             arguments=dict(_typed(src, "arguments", dict, f"{where} [source]") or {}),
             weights=_typed(src, "weights", str, f"{where} [source]"),
             output_key=_typed(src, "output_key", str, f"{where} [source]"),
+            seed=_seed(src, f"{where} [source]"),
         )
         if kind == "torchvision" and not source.architecture:
             raise SpecError(f"{where} [source]: kind 'torchvision' needs architecture = \"resnet18\" or similar")
+        if kind == "timm" and not source.architecture:
+            raise SpecError(f"{where} [source]: kind 'timm' needs architecture = \"resnet18\" or another timm name")
         if kind == "factory" and not source.factory:
             raise SpecError(f"{where} [source]: kind 'factory' needs factory = \"package.module:function\"")
-        if kind in ("export", "torchscript", "pickled") and not source.weights:
+        if kind in ("onnx", "export", "torchscript", "pickled") and not source.weights:
             raise SpecError(f"{where} [source]: kind {kind!r} needs weights = \"path to the archive\"")
 
         inp = _table(data, "input", where, required=True)
@@ -175,6 +180,7 @@ class ModelSpec:
                 "arguments": self.source.arguments,
                 "weights": self.source.weights,
                 "output_key": self.source.output_key,
+                "seed": self.source.seed,
             },
             "input": {"height": self.input.height, "width": self.input.width, "channels": self.input.channels},
             "preprocess": {
@@ -217,6 +223,15 @@ def _typed(data: dict[str, Any], key: str, kind: type, where: str, *, required: 
     value = data[key]
     if not isinstance(value, kind) or (kind is int and isinstance(value, bool)):
         raise SpecError(f"{where}: {key} must be a {kind.__name__}, got {value!r}")
+    return value
+
+
+def _seed(data: dict[str, Any], where: str) -> int:
+    value = _typed(data, "seed", int, where)
+    if value is None:
+        return 0
+    if not 0 <= value < 2**63:
+        raise SpecError(f"{where}: seed must be a whole number from 0 to 2^63 - 1, got {value}")
     return value
 
 

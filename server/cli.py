@@ -8,8 +8,10 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import logging
 import os
 import sys
+import warnings
 from collections.abc import Callable, Sequence
 
 from pellucid import __version__
@@ -47,7 +49,50 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+class _Held(logging.Handler):
+    """Keeps log records (torch's included) until the command's outcome is known."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.WARNING)
+        self.records: list[logging.LogRecord] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.records.append(record)
+
+
+def _first_line(text: str) -> str:
+    return (text.strip().splitlines() or [""])[0][:300]
+
+
 def run(func: Callable[[argparse.Namespace], int], args: argparse.Namespace) -> int:
+    """Run a command; an error is one line on stderr and nothing else.
+
+    Warnings and log messages from libraries (torch's among them) are held back while the command
+    runs: after an error only Pellucid's line is printed; after success each distinct one is
+    printed as one line. PELLUCID_DEBUG=1, and commands that run until stopped (``hold_output``
+    False: the server), let everything through as it happens.
+    """
+    if os.environ.get("PELLUCID_DEBUG") or not getattr(args, "hold_output", True):
+        return _run(func, args)
+    held = _Held()
+    root = logging.getLogger()
+    root.addHandler(held)
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            code = _run(func, args)
+    finally:
+        root.removeHandler(held)
+    if code != EXIT_BAD_INPUT:
+        seen: set[str] = set()
+        for text in [f"{w.category.__name__}: {w.message}" for w in caught] + [r.getMessage() for r in held.records]:
+            line = _first_line(text)
+            if line and line not in seen:
+                seen.add(line)
+                print(f"pellucid: warning: {line}", file=sys.stderr)
+    return code
+
+
+def _run(func: Callable[[argparse.Namespace], int], args: argparse.Namespace) -> int:
     try:
         return int(func(args) or 0)
     except PellucidError as exc:
@@ -59,8 +104,8 @@ def run(func: Callable[[argparse.Namespace], int], args: argparse.Namespace) -> 
     except Exception as exc:  # noqa: BLE001 - the user gets one line, developers get PELLUCID_DEBUG
         if os.environ.get("PELLUCID_DEBUG"):
             raise
-        print(f"pellucid: internal error ({type(exc).__name__}: {exc}); rerun with PELLUCID_DEBUG=1 for details",
-              file=sys.stderr)
+        print(f"pellucid: internal error ({type(exc).__name__}: {_first_line(str(exc))}); rerun with "
+              "PELLUCID_DEBUG=1 for details", file=sys.stderr)
         return EXIT_BAD_INPUT
 
 

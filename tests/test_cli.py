@@ -112,5 +112,5 @@ def test_console_script_runs_as_a_process(tmp_path):
 def test_serve_refuses_an_unusable_data_folder(tmp_path, capsys):
     blocker = tmp_path / "not-a-folder"
     blocker.write_text("a file where the data folder should be")
-    code, _, err = run_cli(["serve", "--data", str(blocker), "--port", "1"], capsys)
+    code, _, err = run_cli(["serve", "--store", str(blocker), "--port", "1"], capsys)
     assert code == 2 and len(err.strip().splitlines()) == 1 and "Traceback" not in err

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 
 
@@ -10,32 +11,46 @@ def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser(
         "serve",
         help="start the dashboard in your browser (http://127.0.0.1:8000)",
-        description="Start the Pellucid dashboard and its JSON API. It listens on 127.0.0.1 only by default.",
+        description="Start the Pellucid dashboard and its JSON API. It listens on 127.0.0.1 only by default; "
+                    "see the README's Security section before listening elsewhere or behind a proxy.",
     )
     p.add_argument("--model", action="append", default=None, metavar="SPEC",
                    help="a model spec file or a bundled model name; repeat for several (default: tilenet)")
     p.add_argument("--images", type=Path, default=None, metavar="DIR",
-                   help="a folder of images to browse from the image page (nothing outside it is served)")
+                   help="a folder of images to browse and audit from the pages (nothing outside it is read)")
     p.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, default=8000, help="port (default 8000)")
-    p.add_argument("--data", type=Path, default=Path(".pellucid"), metavar="DIR",
-                   help="folder for stored audit runs and artefacts (default ./.pellucid)")
+    p.add_argument("--store", type=Path, default=None, metavar="DIR",
+                   help="folder for stored audit runs and artefacts (default: $PELLUCID_DATA or ./.pellucid)")
+    p.add_argument("--data", type=Path, default=None, dest="old_store", help=argparse.SUPPRESS)
     p.add_argument("--token", default=None,
-                   help="access token to require "
+                   help="access token to require, at least 16 characters "
                         "(default: none on 127.0.0.1; generated and printed on other addresses)")
+    p.add_argument("--allow-host", action="append", default=[], metavar="NAME",
+                   help="another name the server answers to without a token (e.g. an alias of this machine "
+                        "in /etc/hosts); 127.0.0.1, localhost and [::1] always work")
     p.add_argument("--trust-pickled", action="store_true",
                    help="allow specs of kind 'pickled' (unpickling runs code from the file; only for your own files)")
-    p.set_defaults(func=_serve)
+    p.set_defaults(func=_serve, hold_output=False)  # a server's log must show as it happens
 
 
 def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
-    from pellucid.core.errors import DataError
+    from pellucid.core.audit.store import Store, default_data_dir
+    from pellucid.core.errors import BadParameterError, DataError
     from pellucid.core.model.bundled import resolve_model_ref
     from pellucid.web.app import create_app
+    from pellucid.web.security import display_base_url
     from pellucid.web.settings import Settings
 
+    if args.old_store is not None:
+        if args.store is not None:
+            raise BadParameterError("give the store's folder once, with --store (--data is its old name)")
+        print("pellucid: note: 'serve --data' is now 'serve --store'; --data will be removed", file=sys.stderr)
+        args.store = args.old_store
+    if not 1 <= args.port <= 65535:
+        raise BadParameterError(f"--port must be from 1 to 65535; received {args.port}")
     models = tuple(str(resolve_model_ref(m)) for m in (args.model or ["tilenet"]))
     if args.images is not None and not args.images.is_dir():
         raise DataError(f"--images {str(args.images)!r} is not a folder")
@@ -44,19 +59,20 @@ def _serve(args: argparse.Namespace) -> int:
         port=args.port,
         models=models,
         image_root=args.images.resolve() if args.images else None,
-        data_dir=args.data,
+        data_dir=args.store or default_data_dir(),
         trust_pickled=args.trust_pickled,
         token=args.token,
+        allowed_hosts=tuple(args.allow_host),
     )
-    # Refuse an unusable data folder now, with one plain line, rather than on the first audit.
-    from pellucid.core.audit.store import Store
-
+    # Refuse an unusable store now, with one plain line, rather than on the first audit.
     Store(settings.data_dir).close()
     app = create_app(settings)
-    base = f"http://{args.host}:{args.port}"
+    base = display_base_url(args.host, args.port)
     print(f"Pellucid dashboard on {base}/  (Ctrl+C to stop)")
     if app.state.guard is not None:
         print(f"access token (send as 'Authorization: Bearer …'): {app.state.guard.token}")
         print(f"one-time sign-in link for a browser: {app.state.guard.sign_in_link(base)}")
-    uvicorn.run(app, host=args.host, port=args.port, log_level="warning")
+    # proxy_headers=False: the client's address is the socket's, never a header a page could set.
+    uvicorn.run(app, host=args.host.strip("[]"), port=args.port, log_level="warning", proxy_headers=False,
+                server_header=False)
     return 0

@@ -82,16 +82,19 @@ def _document_error_bodies(app: FastAPI) -> None:
     app.openapi = openapi  # type: ignore[method-assign]
 
 
+_METHODS = ("GET", "HEAD", "POST", "PUT", "PATCH", "DELETE")
+
+
 def _allowed_methods(request: Request) -> str:
-    """Every method some route offers on this path (Starlette names only the first route's)."""
+    """Every method some route fully matches on this path (Starlette names only the first route's)."""
     from starlette.routing import Match
 
-    methods: set[str] = set()
-    for route in request.app.router.routes:
-        match, _ = route.matches(request.scope)
-        if match != Match.NONE and getattr(route, "methods", None):
-            methods |= set(route.methods)
-    return ", ".join(sorted(methods))
+    allowed = []
+    for method in _METHODS:
+        scope = {**request.scope, "method": method}
+        if any(route.matches(scope)[0] == Match.FULL for route in request.app.router.routes):
+            allowed.append(method)
+    return ", ".join(allowed)
 
 
 def install_error_handlers(app: FastAPI) -> None:

@@ -28,6 +28,7 @@ from __future__ import annotations
 import hmac
 import ipaddress
 import json
+import math
 import secrets
 import socket
 import threading
@@ -267,11 +268,11 @@ class SecurityMiddleware:
 
     def _check_token(self, scope: Scope, headers: dict[str, str], guard: AccessGuard) -> Responder | None:
         client = str((scope.get("client") or ("unknown",))[0])
-        wait = guard.locked_for(client)
+        wait = math.ceil(guard.locked_for(client))
         if wait > 0:
             return _refuse(429, "TooManyAttempts", (
-                f"too many wrong access tokens from this address; wait {int(wait) + 1} s before trying again"),
-                retry_after=int(wait) + 1)
+                f"too many wrong access tokens from this address; wait {wait} s before trying again"),
+                retry_after=wait)
         query = parse_qsl(scope.get("query_string", b"").decode("latin-1"), keep_blank_values=True)
         code = next((v for k, v in query if k == "sign-in"), None)
         presented = _presented_token(headers)

@@ -42,7 +42,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from pellucid.core.errors import BadParameterError
+from pellucid.core.errors import BadParameterError, UnsupportedLayerError
 from pellucid.core.occlusion.positions import BASELINES, _as_count, _occluded_batch, make_baseline, occlusion_positions
 from pellucid.core.progress import CancelToken, ProgressFn, step
 from pellucid.core.views.predict import model_logits
@@ -67,6 +67,9 @@ METHODS = ("auto", "batched", "incremental", "naive", "approximate")
 # pixels per image, fewer images). On the 2-core bench machine larger batches stopped paying once
 # a batch's activations left the cache; see BENCHMARKS.md.
 _DEFAULT_BATCH_PIXELS = 16 * 224 * 224
+# On grids too small to race (fewer than three incremental batches), method="auto" takes the
+# incremental engine when its estimated MAC saving is at least this.
+WORTHWHILE_SPEEDUP_SMALL_GRID = 1.5
 
 
 @dataclass
@@ -167,26 +170,46 @@ def _scores(logits: torch.Tensor, target: int, output: str) -> torch.Tensor:
 Evaluator = Callable[[torch.Tensor, torch.Tensor], torch.Tensor]
 
 
+def _row_batches(rows: int, cols: int, batch_size: int, skip: set[int]) -> list[np.ndarray]:
+    """Flat position indices in batches of whole rows (``batch_size // cols`` rows each, at least one,
+    or pieces of one row when a row alone exceeds the batch), leaving out ``skip``. Whole rows keep
+    the incremental engine's row windows tight; the batched engine does not care."""
+    out: list[np.ndarray] = []
+    per = max(1, batch_size // cols)
+    for r0 in range(0, rows, per):
+        idx = np.arange(r0 * cols, min(rows, r0 + per) * cols)
+        if skip:
+            idx = idx[~np.isin(idx, list(skip))]
+        for start in range(0, len(idx), max(batch_size, 1)):
+            if len(idx[start : start + batch_size]):
+                out.append(idx[start : start + batch_size])
+    return out
+
+
 def _run_positions(
     evaluate: Evaluator,
-    tops: torch.Tensor,
-    lefts: torch.Tensor,
-    batch_size: int,
+    ty: torch.Tensor,
+    tx: torch.Tensor,
+    batches: list[np.ndarray],
+    known: dict[int, torch.Tensor],
     *,
-    done_before: int,
     total: int,
     progress: ProgressFn | None,
     cancel: CancelToken | None,
 ) -> torch.Tensor:
-    """Evaluate logits for every (top, left) pair in batches, reporting progress between them."""
-    chunks = []
-    n = tops.shape[0]
-    for start in range(0, n, batch_size):
-        step(done_before + start, total, progress=progress, cancel=cancel)
-        stop = min(n, start + batch_size)
-        chunks.append(evaluate(tops[start:stop], lefts[start:stop]))
-    step(done_before + n, total, progress=progress, cancel=cancel)
-    return torch.cat(chunks) if chunks else torch.empty(0)
+    """(N, K) logits for every flat position: ``known`` rows as given, the rest evaluated in ``batches``,
+    reporting progress between them."""
+    rows: dict[int, torch.Tensor] = dict(known)
+    done = len(known)
+    for idx in batches:
+        step(done, total, progress=progress, cancel=cancel)
+        sel = torch.as_tensor(idx)
+        logits = evaluate(ty[sel], tx[sel])
+        for i, row in zip(idx.tolist(), logits):
+            rows[i] = row
+        done += len(idx)
+    step(total, total, progress=progress, cancel=cancel)
+    return torch.stack([rows[i] for i in range(total)]) if total else torch.empty(0)
 
 
 def _aggregate(grid: np.ndarray, tops: np.ndarray, lefts: np.ndarray, patch: int, h: int, w: int) -> np.ndarray:
@@ -221,6 +244,8 @@ def occlusion_map(
     batch_size: int | None = None,
     method: str = "auto",
     refine_tolerance: float = 0.05,
+    drill_down: float = 0.15,
+    check_sample: int = 12,
     progress: ProgressFn | None = None,
     cancel: CancelToken | None = None,
 ) -> OcclusionResult:
@@ -233,7 +258,10 @@ def occlusion_map(
     ``"logit"`` (the raw score). ``method``: one of :data:`METHODS`. ``refine_tolerance``: for
     ``method="approximate"`` only, a share of the coarse map's range (max − min drop): a cell
     whose corner drops differ by more than that is evaluated at full resolution; 0 refines
-    every cell whose corners differ at all.
+    every cell whose corners differ at all. ``drill_down`` (approximate only): the share of the
+    grid, ranked by the coarse map's drop, whose cells are also evaluated at full resolution.
+    ``check_sample`` (approximate only): how many of the positions it would otherwise
+    interpolate are evaluated exactly to measure its error (``details["sampled_error"]``).
 
     Returns an :class:`OcclusionResult`; ``drop`` is (H, W) float32.
     """
@@ -267,6 +295,10 @@ def occlusion_map(
         math.isfinite(float(refine_tolerance)) and float(refine_tolerance) >= 0
     ):
         raise BadParameterError(f"refine_tolerance must be a finite number ≥ 0; received {refine_tolerance!r}.")
+    if isinstance(drill_down, bool) or not isinstance(drill_down, numbers.Real) or not 0.0 <= float(drill_down) <= 1.0:
+        raise BadParameterError(f"drill_down must be a share between 0 and 1; received {drill_down!r}.")
+    if isinstance(check_sample, bool) or not isinstance(check_sample, numbers.Integral) or int(check_sample) < 0:
+        raise BadParameterError(f"check_sample must be a whole number ≥ 0; received {check_sample!r}.")
     base, base_desc = make_baseline(x, baseline, patch=patch)
 
     model.eval()
@@ -286,27 +318,32 @@ def occlusion_map(
                 )
         base_score = float(_scores(logits0, target, output)[0])
 
-        engine, evaluate, bs, details = _choose_engine(model, x, base, patch, method, batch_size,
-                                                       (len(tops), len(lefts)))
+        ty = torch.as_tensor(tops).repeat_interleave(len(lefts))
+        tx = torch.as_tensor(lefts).repeat(len(tops))
+        choice = _choose_engine(model, x, base, patch, "auto" if method == "approximate" else method, batch_size,
+                                (len(tops), len(lefts)), ty, tx)
+        engine, bs, details = choice.name, choice.batch_size, dict(choice.details)
         if method == "approximate":
-            from pellucid.core.occlusion.approximate import adaptive_grid
+            from pellucid.core.occlusion.approximate import approximate_grid
 
-            grid64, top_class, evaluated, n_eval = adaptive_grid(
-                evaluate, torch.as_tensor(tops), torch.as_tensor(lefts),
+            approx = approximate_grid(
+                choice.evaluate, tops, lefts, known=choice.known,
                 score=lambda lg: _scores(lg, target, output), base_score=base_score, batch_size=bs,
-                tolerance=float(refine_tolerance), progress=progress, cancel=cancel,
+                tolerance=float(refine_tolerance), drill_down=float(drill_down), check_sample=int(check_sample),
+                progress=progress, cancel=cancel,
             )
-            grid = grid64.astype(np.float32)
+            grid = approx.grid.astype(np.float32)
+            top_class = approx.top_class
+            evaluated = approx.evaluated
             details = {**details, "exact_engine": engine, "refine_tolerance": float(refine_tolerance),
-                       "evaluated_fraction": float(evaluated.mean())}
+                       "drill_down": float(drill_down), "evaluated_fraction": float(evaluated.mean()),
+                       "sampled_error": approx.sampled_error}
             engine = "approximate"
-            n_forwards = n_eval + 1
+            n_forwards = approx.n_evaluated + 1
         else:
-            ty = torch.as_tensor(tops).repeat_interleave(len(lefts))
-            tx = torch.as_tensor(lefts).repeat(len(tops))
-            logits = _run_positions(
-                evaluate, ty, tx, bs, done_before=0, total=n_pos, progress=progress, cancel=cancel
-            )
+            batches = _row_batches(len(tops), len(lefts), bs, set(choice.known))
+            logits = _run_positions(choice.evaluate, ty, tx, batches, choice.known, total=n_pos,
+                                    progress=progress, cancel=cancel)
             scores = _scores(logits, target, output)
             grid = (base_score - scores).view(len(tops), len(lefts)).numpy().astype(np.float32)
             top_class = logits.argmax(dim=1).view(len(tops), len(lefts)).numpy()
@@ -338,6 +375,30 @@ def occlusion_map(
     )
 
 
+@dataclass
+class _Choice:
+    """The engine that will evaluate the grid, and the positions already evaluated while choosing it."""
+
+    name: str
+    evaluate: Evaluator
+    batch_size: int
+    details: dict[str, Any]
+    known: dict[int, torch.Tensor] = field(default_factory=dict)
+    incremental: Any = None
+
+
+def _check_positions(rows: int, cols: int, k: int) -> np.ndarray:
+    """``k`` flat grid indices spread over the grid: the four corners, the centre, then evenly spaced."""
+    n = rows * cols
+    picks = [0, cols - 1, (rows - 1) * cols, n - 1, (rows // 2) * cols + cols // 2]
+    picks += np.linspace(0, n - 1, num=max(k, 2)).round().astype(int).tolist()
+    out: list[int] = []
+    for i in picks:
+        if i not in out:
+            out.append(int(i))
+    return np.asarray(out[: max(1, min(k, n))], dtype=np.int64)
+
+
 def _choose_engine(
     model: nn.Module,
     x: torch.Tensor,
@@ -346,50 +407,106 @@ def _choose_engine(
     method: str,
     batch_size: int | None,
     grid_shape: tuple[int, int],
-) -> tuple[str, Evaluator, int, dict[str, Any]]:
-    """Pick the engine: returns (name, evaluate(tops, lefts) -> logits, batch size, details)."""
+    ty: torch.Tensor,
+    tx: torch.Tensor,
+) -> _Choice:
+    """Pick the engine for ``method``.
+
+    ``auto`` races them: the incremental engine is first checked against brute force on grid
+    positions spread over the grid (corners included), then one warm batch of each engine is timed
+    on positions of this grid and the faster per position evaluates the rest. Every position
+    evaluated while choosing is exact and kept, so choosing costs little beyond the setup.
+    """
+    rows, cols = grid_shape
+    n = rows * cols
+    batched_bs = batch_size or _default_batch(x, n)
+
+    def batched(ty_: torch.Tensor, tx_: torch.Tensor) -> torch.Tensor:
+        return model_logits(model, _occluded_batch(x, base, ty_, tx_, patch))
+
     if method == "naive":
 
-        def naive(ty: torch.Tensor, tx: torch.Tensor) -> torch.Tensor:
+        def naive(ty_: torch.Tensor, tx_: torch.Tensor) -> torch.Tensor:
             outs = []
-            for top, left in zip(ty.tolist(), tx.tolist()):
+            for top, left in zip(ty_.tolist(), tx_.tolist()):
                 xo = x.clone()
                 xo[:, :, top : top + patch, left : left + patch] = base[:, :, top : top + patch, left : left + patch]
                 outs.append(model_logits(model, xo))
             return torch.cat(outs)
 
-        return "naive", naive, batch_size or 1, {}
+        return _Choice("naive", naive, batch_size or 1, {})
+    if method == "batched":
+        return _Choice("batched", batched, batched_bs, {})
 
-    if method in ("auto", "incremental", "approximate"):
-        from pellucid.core.occlusion.incremental import IncrementalOcclusion, NotIncremental
+    from pellucid.core.occlusion.incremental import (
+        RACE_BELOW,
+        SELF_CHECK_TOLERANCE,
+        IncrementalOcclusion,
+        NotIncremental,
+    )
 
-        try:
-            engine = IncrementalOcclusion(model, x, base, patch=patch)
-        except NotIncremental as exc:
-            if method == "incremental":
-                from pellucid.core.errors import UnsupportedLayerError
+    def refuse(reason: str) -> _Choice:
+        if method == "incremental":
+            raise UnsupportedLayerError(f"incremental occlusion cannot run on this model: {reason} "
+                                        "Use method='batched'.")
+        return _Choice("batched", batched, batched_bs, {"incremental_skipped": reason})
 
-                raise UnsupportedLayerError(
-                    f"incremental occlusion cannot run on this model: {exc} Use method='batched'."
-                ) from None
-            reason = str(exc)
-        else:
-            if method == "incremental" or engine.worthwhile:
-                bs = batch_size or engine.default_batch(*grid_shape)
-                return "incremental", engine.logits, bs, {
-                    "estimated_speedup": engine.estimated_speedup,
-                    "ideal_speedup": engine.ideal_speedup,
-                    "self_check_positions": 3,
-                }
-            reason = f"estimated speedup {engine.estimated_speedup:.2f}× is too small"
-        details = {"incremental_skipped": reason}
-    else:
-        details = {}
+    try:
+        engine = IncrementalOcclusion(model, x, base, patch=patch, self_check=False)
+    except NotIncremental as exc:
+        return refuse(str(exc))
+    details: dict[str, Any] = {"estimated_speedup": engine.estimated_speedup, "ideal_speedup": engine.ideal_speedup}
+    if method == "auto" and engine.estimated_speedup < RACE_BELOW:
+        return _Choice("batched", batched, batched_bs, {
+            **details, "incremental_skipped": f"estimated speedup {engine.estimated_speedup:.2f}× is too small"})
+    inc_bs = batch_size or engine.default_batch(rows, cols)
 
-    def batched(ty: torch.Tensor, tx: torch.Tensor) -> torch.Tensor:
-        return model_logits(model, _occluded_batch(x, base, ty, tx, patch))
+    # self-check on grid positions: brute force is the reference, its logits are kept
+    check = _check_positions(rows, cols, batched_bs if method == "auto" else 3)
+    sel = torch.as_tensor(check)
+    ref = batched(ty[sel], tx[sel])
+    try:
+        got = engine.logits(ty[sel], tx[sel])
+    except Exception as exc:  # noqa: BLE001 — any failure refuses the engine, never the map
+        return refuse(f"the engine failed on this model ({type(exc).__name__}: {exc}).")
+    if got.shape != ref.shape:
+        return refuse(f"the engine gave shape {tuple(got.shape)}, brute force {tuple(ref.shape)}.")
+    diff = float((torch.softmax(got.double(), 1) - torch.softmax(ref.double(), 1)).abs().max())
+    if not diff <= SELF_CHECK_TOLERANCE:
+        return refuse(f"self-check against brute force failed (max probability difference {diff:.2e}).")
+    known = {int(i): row for i, row in zip(check.tolist(), ref)}
+    details["self_check_positions"] = len(check)
+    choice = _Choice("incremental", engine.logits, inc_bs, details, known, engine)
+    if method != "auto":
+        return choice
 
-    return "batched", batched, batch_size or _default_batch(x, grid_shape[0] * grid_shape[1]), details
+    # the race: one batch of whole middle rows for incremental, one warm batched batch
+    pending = _row_batches(rows, cols, inc_bs, set(known))
+    if len(pending) < 3:  # a small grid: the estimate decides, racing would cost more than it tells
+        if engine.estimated_speedup >= WORTHWHILE_SPEEDUP_SMALL_GRID:
+            return choice
+        return _Choice("batched", batched, batched_bs, {
+            **details, "incremental_skipped": f"estimated speedup {engine.estimated_speedup:.2f}× is too small"},
+            known)
+    inc_idx = pending[len(pending) // 2]
+    rest = np.concatenate([b for b in pending if b is not inc_idx])
+    bat_idx = rest[len(rest) // 2 : len(rest) // 2 + batched_bs]
+    sel = torch.as_tensor(bat_idx)
+    t0 = time.perf_counter()
+    out = batched(ty[sel], tx[sel])
+    t_bat = (time.perf_counter() - t0) / len(bat_idx)
+    known.update({int(i): row for i, row in zip(bat_idx.tolist(), out)})
+    sel = torch.as_tensor(inc_idx)
+    t0 = time.perf_counter()
+    out = engine.logits(ty[sel], tx[sel])
+    t_inc = (time.perf_counter() - t0) / len(inc_idx)
+    known.update({int(i): row for i, row in zip(inc_idx.tolist(), out)})
+    details["race_ms_per_position"] = {"incremental": 1000 * t_inc, "batched": 1000 * t_bat}
+    if t_inc <= t_bat:
+        return choice
+    details["incremental_skipped"] = (f"measured {1000 * t_inc:.1f} ms per position against {1000 * t_bat:.1f} ms "
+                                      "for batched")
+    return _Choice("batched", batched, batched_bs, details, known)
 
 
 def compare_to_exact(result: OcclusionResult, model: nn.Module, x: torch.Tensor, *, baseline: Any = "mean",

@@ -114,3 +114,88 @@ def test_serve_refuses_an_unusable_data_folder(tmp_path, capsys):
     blocker.write_text("a file where the data folder should be")
     code, _, err = run_cli(["serve", "--store", str(blocker), "--port", "1"], capsys)
     assert code == 2 and len(err.strip().splitlines()) == 1 and "Traceback" not in err
+
+
+# --- checks at load time, readable pictures, progress and start-up ---------------------------------------------
+
+
+def nan_net() -> torch.nn.Module:
+    net = torch.nn.Sequential(torch.nn.Conv2d(3, 4, 3), torch.nn.AdaptiveAvgPool2d(1), torch.nn.Flatten(),
+                              torch.nn.Linear(4, 3))
+    with torch.no_grad():
+        net[3].bias.fill_(float("nan"))
+    return net
+
+
+def test_models_refuses_a_model_whose_dry_run_is_nan(tmp_path, capsys):
+    spec = tmp_path / "spec.toml"
+    spec.write_text(f'name = "broken"\n[source]\nkind = "factory"\nfactory = "{__name__}:nan_net"\n'
+                    '[input]\nheight = 16\nwidth = 16\n[output]\nlabels = ["a", "b", "c"]\n')
+    code, out, err = run_cli(["models", str(spec)], capsys)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and "NaN or infinite" in err and "Traceback" not in err
+
+
+def test_inspect_pictures_are_enlarged_by_pixel_repetition_and_say_how(tmp_path, capsys):
+    from pellucid.core.model.loading import load_model
+
+    out = tmp_path / "o"
+    spec = tiny_spec(tmp_path)
+    code, _, err = run_cli(["inspect", str(png(tmp_path)), "--model", str(spec), "--out", str(out),
+                            "--patch", "8", "--stride", "8", "--method", "saliency", "--quiet"], capsys)
+    assert code == 0, err
+    assert err == ""  # --quiet: no progress lines
+    result = json.loads((out / "result.json").read_text())
+    assert result["display"]["input_size"] == [32, 32] and result["display"]["enlarged"] == 12
+    for name in ("input.png", "occlusion_overlay.png", "occlusion_map.png", "saliency_overlay.png", "saliency_map.png"):
+        img = np.asarray(Image.open(out / name).convert("RGB"))
+        assert img.shape[:2] == (384, 384), name
+        # Nearest neighbour: every 12×12 block is one colour (smoothing would blend neighbouring blocks).
+        small = img[::12, ::12]
+        assert np.array_equal(np.repeat(np.repeat(small, 12, axis=0), 12, axis=1), img), name
+        assert result["pictures"][name]["resampling"].startswith("nearest neighbour")
+    # Kernels: each tile scaled to its own largest |weight|; the scales listed match the first conv's weights.
+    kernels = result["pictures"]["kernels.png"]
+    assert "own largest |weight|" in kernels["scaling"]
+    weights = dict(load_model(spec).module.named_parameters())[f"{kernels['layer']}.weight"].detach()
+    expected = [float(weights[f].abs().max()) for f in kernels["filters"]]
+    assert np.allclose(kernels["scales"], expected, rtol=1e-6)
+    assert result["provenance"]["torch"] == torch.__version__.split("+")[0]
+
+
+def _audit_folder(tmp_path: Path) -> Path:
+    rng = np.random.default_rng(0)
+    root = tmp_path / "data"
+    for label in ("a", "b", "c"):
+        (root / label).mkdir(parents=True, exist_ok=True)
+        for i in range(2):
+            Image.fromarray(rng.integers(0, 256, (32, 32, 3), dtype=np.uint8)).save(root / label / f"{i}.png")
+    return root
+
+
+def _audit(tmp_path: Path, *extra: str) -> subprocess.CompletedProcess:
+    import os
+
+    env = {**os.environ, "PELLUCID_PROGRESS_SECONDS": "0", "PYTHONPATH": str(REPO)}
+    args = [sys.executable, "-m", "pellucid", "audit", "--model", str(tiny_spec(tmp_path)),
+            "--data" if "--data" in _audit_help() else "--images", str(_audit_folder(tmp_path)),
+            "--out", str(tmp_path / "out"), "--store", str(tmp_path / "store"), "--method", "saliency", *extra]
+    return subprocess.run(args, cwd=tmp_path, capture_output=True, text=True, timeout=300, env=env)
+
+
+def _audit_help() -> str:
+    return subprocess.run([sys.executable, "-m", "pellucid", "audit", "--help"], cwd=REPO, capture_output=True,
+                          text=True, timeout=60).stdout
+
+
+@pytest.mark.slow
+def test_audit_without_a_terminal_prints_plain_progress_lines_and_quiet_prints_none(tmp_path):
+    proc = _audit(tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
+    assert "\r" not in proc.stderr  # no bar redrawn in place: stderr is a pipe here
+    progress = [ln for ln in lines if "/6" in ln]
+    assert progress and any("done in" in ln for ln in progress)
+    assert all("Traceback" not in ln for ln in lines)
+    quiet = _audit(tmp_path, "--quiet", "--fresh")
+    assert quiet.returncode == 0 and "/6" not in quiet.stderr

@@ -355,5 +355,5 @@ def test_torchscript_refuses_hook_methods_up_front_and_runs_the_others(tmp_path)
                  lambda: compute_attribution("gradcam", m.module, torch.zeros(1, 3, 16, 16))):
         with pytest.raises(BadParameterError, match="unavailable for TorchScript: needs forward hooks"):
             call()
-    amap = compute_attribution("gradient", m.module, torch.randn(1, 3, 16, 16))
+    amap = compute_attribution("saliency", m.module, torch.randn(1, 3, 16, 16))
     assert np.abs(amap.map).sum() > 0

@@ -128,8 +128,8 @@ def _pickle_kind(data: bytes) -> str:
 
 def _advice(fmt: str, file: str) -> str:
     if fmt in (SAFETENSORS, STATE_DICT):
-        return (f"use kind = \"torchvision\", \"timm\" or \"factory\" with weights = \"{file}\" and the architecture "
-                "these weights belong to")
+        return (f"use kind = \"factory\" (your model's code), or \"torchvision\" / \"timm\" for their "
+                f"architectures, with weights = \"{file}\"")
     if fmt == TORCHSCRIPT:
         return f"use kind = \"torchscript\" with weights = \"{file}\""
     if fmt == EXPORT:

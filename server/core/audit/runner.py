@@ -21,7 +21,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from pellucid import __version__
+from pellucid.core.attribution import get_method
 from pellucid.core.audit.aggregate import class_mean_maps, summarise
+from pellucid.core.audit.caution import CAUTION as AUDIT_CAUTION
 from pellucid.core.audit.dataset import Dataset
 from pellucid.core.audit.engine import run_shards
 from pellucid.core.audit.gallery import channel_gallery
@@ -32,14 +34,12 @@ from pellucid.core.audit.worker import ShardTask
 from pellucid.core.errors import BadParameterError, Cancelled, DataError, PellucidError
 from pellucid.core.model.loading import LoadedModel
 from pellucid.core.progress import CancelToken, ProgressFn, step
+from pellucid.core.provenance import provenance
 from pellucid.core.views.render import encode_png
 
 __all__ = ["CAUTION", "AuditOutcome", "run_audit", "run_settings", "stored_inputs"]
 
-CAUTION = (
-    "Attribution maps are evidence about this model on these images, not proof of what it has learned or "
-    "of how it will behave elsewhere; deployment decisions follow the domain's own rules, reviews and sign-off."
-)
+CAUTION = AUDIT_CAUTION  # kept here too: older code imports it from the runner
 
 
 @dataclass
@@ -175,6 +175,9 @@ def run_audit(
     """
     started = time.perf_counter()
     settings = (settings or AuditSettings()).validated()
+    if not model.supports_hooks and get_method(settings.method).needs_hooks:
+        raise BadParameterError(f"{settings.method} is unavailable for TorchScript: needs forward hooks; audit this "
+                                "model with occlusion or a gradient method (saliency, integrated_gradients)")
     _check_labels(model, dataset)
     if injection is not None:
         model.class_index(injection.suspect_class)
@@ -236,6 +239,7 @@ def run_audit(
         summary = summarise(rows, labels=model.labels, settings=settings, shape=(h, w))
         summary["dataset"] = dataset.summary()
         summary["model"] = _model_record(model)
+        summary["provenance"] = provenance()
         if summary["done"] == 0:
             raise DataError(
                 f"no image of the dataset could be audited; first problem: "

@@ -28,12 +28,13 @@ from matplotlib.backends.backend_pdf import PdfPages
 from matplotlib.figure import Figure
 from PIL import Image
 
+from pellucid.core.audit.caution import CAUTION
 from pellucid.core.audit.measures import CORNERS, region_masks
 from pellucid.core.audit.policy import Policy, PolicyResult, evaluate_policy
-from pellucid.core.audit.runner import CAUTION
 from pellucid.core.audit.settings import AuditSettings
 from pellucid.core.audit.store import DONE, RunRecord, Store
 from pellucid.core.errors import BadParameterError, StoreError
+from pellucid.core.provenance import provenance_line
 
 __all__ = ["MEASURE_SENTENCES", "ReportContent", "build_report", "write_report"]
 
@@ -288,10 +289,11 @@ def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]
         ("table", (["what", "value"], [
             ["run id", run.id], ["status", run.status], ["started", _when(run.created)],
             ["finished", _when(run.finished)], ["tool version", f"pellucid {run.tool_version}"],
-            ["model", run.model_name], ["model fingerprint (sha256 of weights)", run.model_fingerprint],
+            ["model", run.model_name], ["model fingerprint (sha256)", run.model_fingerprint],
             ["model spec", run.model_spec or "—"], ["dataset", run.dataset_root],
             ["dataset hash", run.dataset_hash], ["manifest sha256", ds.get("manifest_sha256") or "—"],
             ["method", run.method],
+            ["environment", provenance_line(s["provenance"]) if s.get("provenance") else "not recorded"],
         ])),
         ("text", "Exact command:"),
         ("pre", run.command or "(not recorded: the run was started from the dashboard or a notebook)"),

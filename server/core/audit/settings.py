@@ -13,7 +13,6 @@ from typing import Any
 
 import numpy as np
 
-from pellucid.core.attribution import get_method
 from pellucid.core.audit.measures import RegionLayout
 from pellucid.core.errors import BadParameterError
 
@@ -52,6 +51,8 @@ class AuditSettings:
     threads: int = 1
 
     def validated(self) -> AuditSettings:
+        from pellucid.core.attribution import get_method  # here, so reading stored settings needs no torch
+
         method = get_method(self.method)  # UnknownMethodError lists the known names
         params = method.schema.validate(dict(self.params or {}), method=method.name)
         if self.target not in TARGETS:

@@ -18,10 +18,11 @@ def register(sub: argparse._SubParsersAction) -> None:
 def _models(args: argparse.Namespace) -> int:
     from pellucid.core.errors import PellucidError
     from pellucid.core.model.bundled import bundled_specs, resolve_model_ref
-    from pellucid.core.model.loading import load_model
     from pellucid.core.model.spec import ModelSpec
 
     if args.name:
+        from pellucid.core.model.loading import load_model  # torch: only when a model is loaded
+
         model = load_model(resolve_model_ref(args.name), trust_pickled=args.trust_pickled)
         print(json.dumps(model.summary(), indent=2))
         return 0
@@ -34,7 +35,7 @@ def _models(args: argparse.Namespace) -> int:
         except PellucidError as exc:
             rows.append((folder, "?", "?", f"unreadable spec: {exc}"))
     width = max((len(r[0]) for r in rows), default=4)
-    print(f"{'NAME'.ljust(width)}  {'SOURCE':<8}  {'INPUT':<11}  DESCRIPTION")
+    print(f"{'NAME'.ljust(width)}  {'SOURCE':<11}  {'INPUT':<11}  DESCRIPTION")
     for name, kind, shape, desc in rows:
-        print(f"{name.ljust(width)}  {kind:<8}  {shape:<11}  {desc}")
+        print(f"{name.ljust(width)}  {kind:<11}  {shape:<11}  {desc}")
     return 0

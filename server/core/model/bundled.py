@@ -8,11 +8,13 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
-
-from torch import nn
+from typing import TYPE_CHECKING
 
 from pellucid._resources import resource_dir
 from pellucid.core.errors import ModelLoadError
+
+if TYPE_CHECKING:  # torch is imported by the loader, not by listing bundled specs
+    from torch import nn
 
 
 def demo_models_dir() -> Path:

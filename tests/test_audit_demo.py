@@ -1,6 +1,6 @@
 """The demo story end to end: the tainted tile model is caught, the clean one passes.
 
-Demo scenario (invented data; DESIGN.md, "Demo scenario"): the tainted TileNet learned that an orange
+Demo scenario (invented data; demo_models/tilenet/MODEL_CARD.md): the tainted TileNet learned that an orange
 calibration tag in the bottom-right corner means `crack`. These tests need the shipped demo models
 and skip with a reason when they are absent.
 """

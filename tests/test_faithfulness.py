@@ -158,7 +158,8 @@ def test_cancel_and_progress(linear_case):
 def test_gradcam_on_tagged_demo_tile_beats_a_random_map():
     # Source: Petsiuk et al., BMVC 2018, §4 — a map that points at the evidence the model uses
     # has a lower deletion AUC than a random map. On the demo model that evidence includes the
-    # planted calibration tag, which Grad-CAM is expected to light up (DESIGN.md's scenario).
+    # planted calibration tag, which Grad-CAM is expected to light up (the demo scenario,
+    # demo_models/tilenet/MODEL_CARD.md).
     if not DEMO_WEIGHTS.exists():
         pytest.skip(f"demo model not built yet ({DEMO_WEIGHTS.relative_to(ROOT)} missing)")
     from safetensors.torch import load_file

@@ -2,7 +2,7 @@
 
 Method: Zeiler & Fergus, "Visualizing and Understanding Convolutional Networks", ECCV 2014, §4.2.
 For a linear score s(x) = w·x + c, occluding a patch with baseline b changes the score by
-Σ over the patch of wᵢ(xᵢ − bᵢ) [derived from the definition, REFERENCES.md].
+Σ over the patch of wᵢ(xᵢ − bᵢ) [derived from the method's definition in that paper, §4.2].
 """
 
 from __future__ import annotations
@@ -51,7 +51,7 @@ class TestLinear:
     @pytest.mark.parametrize("baseline", ["zero", "mean", 0.7, "blur", "tensor"])
     @pytest.mark.parametrize("hw,patch,stride", [((13, 11), 4, 3), ((8, 8), 3, 2), ((9, 12), 5, 5)])
     def test_logit_drop_equals_analytic_patch_sum(self, baseline, hw, patch, stride):
-        # Source: Zeiler & Fergus, ECCV 2014, §4.2 (method); linear identity [derived], REFERENCES.md.
+        # Source: Zeiler & Fergus, ECCV 2014, §4.2 (method); the linear identity is derived from it.
         h, w = hw
         model = _linear(2, h, w, 5, seed=1)
         x = torch.randn(1, 2, h, w, generator=torch.Generator().manual_seed(2), dtype=torch.float64)
@@ -86,7 +86,7 @@ class TestLinear:
 
     def test_ignored_pixels_change_nothing(self):
         # Source: Zeiler & Fergus, ECCV 2014, §4.2; "occluding pixels the model ignores changes
-        # nothing" [derived], REFERENCES.md.
+        # nothing" [derived from the method's definition].
         model = _linear(1, 12, 12, 3, seed=4)
         with torch.no_grad():
             model[1].weight.view(3, 1, 12, 12)[:, :, :, :6] = 0.0  # the model ignores the left half

@@ -22,10 +22,14 @@ Engines (all exact except ``approximate``):
 - ``batched``: occluded copies built with tensor ops and run in batches under ``inference_mode``.
 - ``incremental``: keeps every layer's output for the clean image and recomputes only the region
   each patch can reach (see :mod:`pellucid.core.occlusion.incremental`).
-- ``approximate``: coarse-to-fine adaptive stride, refining only where the map changes; its
-  result says so (``engine == "approximate"``, ``evaluated`` marks the positions really run).
+- ``approximate``: a coarse pass, then adaptive drill-down where the map changes or ranks high
+  (see :mod:`pellucid.core.occlusion.approximate`); its result says so (``engine ==
+  "approximate"``, ``evaluated`` marks the positions really run, ``details["sampled_error"]`` its
+  error measured on a sample of the positions it interpolated).
 
-``method="auto"`` picks the fastest exact engine that applies and records which one ran.
+``method="auto"`` checks the incremental engine against brute force on grid positions, times one
+batch of each engine on this grid and lets the faster one evaluate the rest; every position run
+while choosing is kept. The result records which engine ran and the measured times.
 A heatmap is evidence about this model on this image, not proof of what it has learned.
 """
 
@@ -243,9 +247,10 @@ def occlusion_map(
     output: str = "softmax",
     batch_size: int | None = None,
     method: str = "auto",
-    refine_tolerance: float = 0.05,
+    refine_tolerance: float = 0.3,
     drill_down: float = 0.15,
     check_sample: int = 12,
+    field_threshold: float = 1.0,
     progress: ProgressFn | None = None,
     cancel: CancelToken | None = None,
 ) -> OcclusionResult:
@@ -262,6 +267,9 @@ def occlusion_map(
     grid, ranked by the coarse map's drop, whose cells are also evaluated at full resolution.
     ``check_sample`` (approximate only): how many of the positions it would otherwise
     interpolate are evaluated exactly to measure its error (``details["sampled_error"]``).
+    ``field_threshold`` (approximate only, incremental engine only): below 1, each layer's changed
+    region is cut to that share of the map's side (projective-field thresholding, Nakandala et al.,
+    SIGMOD 2019), so positions are cheaper but no longer exact; 1 keeps them exact.
 
     Returns an :class:`OcclusionResult`; ``drop`` is (H, W) float32.
     """
@@ -299,6 +307,13 @@ def occlusion_map(
         raise BadParameterError(f"drill_down must be a share between 0 and 1; received {drill_down!r}.")
     if isinstance(check_sample, bool) or not isinstance(check_sample, numbers.Integral) or int(check_sample) < 0:
         raise BadParameterError(f"check_sample must be a whole number ≥ 0; received {check_sample!r}.")
+    if isinstance(field_threshold, bool) or not isinstance(field_threshold, numbers.Real) or not (
+        0.0 < float(field_threshold) <= 1.0
+    ):
+        raise BadParameterError(f"field_threshold must be a share in (0, 1]; received {field_threshold!r}.")
+    if float(field_threshold) < 1.0 and method != "approximate":
+        raise BadParameterError("field_threshold below 1 makes occlusion approximate; use it with "
+                                "method='approximate'.")
     base, base_desc = make_baseline(x, baseline, patch=patch)
 
     model.eval()
@@ -326,8 +341,15 @@ def occlusion_map(
         if method == "approximate":
             from pellucid.core.occlusion.approximate import approximate_grid
 
+            evaluate = choice.evaluate
+            if float(field_threshold) < 1.0 and choice.incremental is not None and choice.name == "incremental":
+                inc, tau = choice.incremental, float(field_threshold)
+
+                def evaluate(ty_: torch.Tensor, tx_: torch.Tensor) -> torch.Tensor:
+                    return inc.logits(ty_, tx_, field_threshold=tau)
+
             approx = approximate_grid(
-                choice.evaluate, tops, lefts, known=choice.known,
+                evaluate, tops, lefts, known=choice.known,
                 score=lambda lg: _scores(lg, target, output), base_score=base_score, batch_size=bs,
                 tolerance=float(refine_tolerance), drill_down=float(drill_down), check_sample=int(check_sample),
                 progress=progress, cancel=cancel,
@@ -337,6 +359,7 @@ def occlusion_map(
             evaluated = approx.evaluated
             details = {**details, "exact_engine": engine, "refine_tolerance": float(refine_tolerance),
                        "drill_down": float(drill_down), "evaluated_fraction": float(evaluated.mean()),
+                       "field_threshold": float(field_threshold) if evaluate is not choice.evaluate else 1.0,
                        "sampled_error": approx.sampled_error}
             engine = "approximate"
             n_forwards = approx.n_evaluated + 1

@@ -19,7 +19,7 @@ import torch.nn.functional as F
 
 from pellucid.core.errors import BadParameterError
 
-__all__ = ["BASELINES", "BLUR_SIGMA_PER_PATCH", "make_baseline", "occlusion_positions"]
+__all__ = ["BASELINES", "BLUR_SIGMA_PER_PATCH", "default_occlusion_geometry", "make_baseline", "occlusion_positions"]
 
 BASELINES = ("mean", "zero", "blur")
 
@@ -42,6 +42,23 @@ def _as_count(value: Any, name: str, *, minimum: int = 1) -> int:
     if value < minimum:
         raise BadParameterError(f"{name} must be at least {minimum}; received {value}.")
     return value
+
+
+def default_occlusion_geometry(height: int, width: int, *, patch: int | None = None,
+                               stride: int | None = None) -> tuple[int, int]:
+    """Pellucid's one rule for the occlusion patch and stride of an (H, W) input, where not given.
+
+    patch = an eighth of the shorter side (at least 2 px), stride = half the patch (at least 1 px):
+    12/6 at 96 px, 28/14 at 224 px, 4/2 at 32 px. The grid then has about 15×15 positions whatever
+    the input size, and a patch is small enough to hide a stamp or a tag without hiding the
+    subject. Our own choice (Zeiler & Fergus fix no size); the CLI, the API, the pages and the
+    audit all use it. A given ``patch`` or ``stride`` is kept as it is.
+    """
+    if patch is None:
+        patch = max(2, min(int(height), int(width)) // 8)
+    if stride is None:
+        stride = max(1, int(patch) // 2)
+    return int(patch), int(stride)
 
 
 def occlusion_positions(size: int, patch: int, stride: int) -> np.ndarray:

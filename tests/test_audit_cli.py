@@ -57,7 +57,7 @@ def test_bad_input_gets_one_line(setup, tmp_path: Path, capsys: pytest.CaptureFi
 def test_unreadable_images_are_listed_not_fatal(setup, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     spec, _ = setup
     data = tmp_path / "data"
-    write_folder(make_split("clean", per_class=1, seed=1), data)
+    write_folder(make_split("clean", per_class=2, seed=1), data)  # at least two images per class
     (data / "manifest.csv").unlink()
     (data / "crack" / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n truncated")
     rc = main(["audit", "--model", str(spec), "--data", str(data), "--out", str(tmp_path / "out"),
@@ -67,7 +67,7 @@ def test_unreadable_images_are_listed_not_fatal(setup, tmp_path: Path, capsys: p
     assert "skipped crack/broken.png:" in captured.err
     doc = json.loads((tmp_path / "out" / "summary.json").read_text())
     assert [s["rel"] for s in doc["dataset"]["skipped"]] == ["crack/broken.png"]
-    assert doc["summary"]["done"] == 4
+    assert doc["summary"]["done"] == 8
 
 
 def test_runs_and_report(setup, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -136,12 +136,14 @@ def test_bad_requests(client: TestClient, body: dict, status: int, message: str)
     assert message in r.json()["detail"]
 
 
-def test_bad_upload_patch_fails_the_job_with_a_message(client: TestClient) -> None:
-    body = {"source": {"kind": "demo", "per_class": 1}, "injection": {
+def test_bad_upload_patch_is_refused_before_the_job(client: TestClient) -> None:
+    before = len(client.get("/api/audits/runs").json()["runs"])
+    body = {"source": {"kind": "demo", "per_class": 2}, "injection": {
         "kind": "upload", "suspect_class": "crack", "at": [1, 1],
         "patch_png": base64.b64encode(b"not a png").decode()}}
-    status = _wait(client, client.post("/api/audits", json=body).json()["id"])
-    assert status["state"] == "failed" and "not an image" in status["error"]
+    r = client.post("/api/audits", json=body)
+    assert r.status_code == 415 and "not an image" in r.json()["detail"], r.text
+    assert len(client.get("/api/audits/runs").json()["runs"]) == before
 
 
 def test_unknown_run_and_job(client: TestClient) -> None:

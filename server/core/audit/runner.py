@@ -28,6 +28,7 @@ from pellucid.core.audit.dataset import Dataset
 from pellucid.core.audit.engine import run_shards
 from pellucid.core.audit.gallery import channel_gallery
 from pellucid.core.audit.injection import background_swap_test, injection_test
+from pellucid.core.audit.preflight import check_audit_inputs
 from pellucid.core.audit.settings import AuditSettings, GallerySpec, InjectionSpec
 from pellucid.core.audit.store import CANCELLED, DONE, FAILED, INTERRUPTED, RUNNING, RunRecord, Store
 from pellucid.core.audit.worker import ShardTask
@@ -179,8 +180,8 @@ def run_audit(
         raise BadParameterError(f"{settings.method} is unavailable for TorchScript: needs forward hooks; audit this "
                                 "model with occlusion or a gradient method (saliency, integrated_gradients)")
     _check_labels(model, dataset)
-    if injection is not None:
-        model.class_index(injection.suspect_class)
+    # Bad input is refused here, before the run row exists (core/audit/preflight.py).
+    check_audit_inputs(model, dataset, settings, injection=injection)
     if gallery is not None and not model.supports_hooks:
         raise BadParameterError("this model does not allow forward hooks, so no channel gallery can be built; "
                                 "drop the gallery option")

@@ -28,7 +28,9 @@ from pydantic import BaseModel, Field
 from pellucid import __version__
 from pellucid.core.audit import CAUTION, AuditSettings, GallerySpec, InjectionSpec, crop_patch, load_dataset, run_audit
 from pellucid.core.audit.compare import compare_runs
+from pellucid.core.audit.dataset import Dataset
 from pellucid.core.audit.policy import Policy, evaluate_policy, load_policy
+from pellucid.core.audit.preflight import check_audit_inputs
 from pellucid.core.audit.runner import stored_inputs
 from pellucid.core.audit.store import RESUMABLE, Store
 from pellucid.core.errors import BadParameterError, ConflictError, DataError, NotFoundError, PellucidError
@@ -93,8 +95,10 @@ class InjectionRequest(BaseModel):
     kind: Literal["demo_tag", "crop", "upload"] = Field(
         description="demo_tag: the demo policy's orange tag; crop: cut from an image of the dataset; upload: a PNG")
     suspect_class: str
-    at: list[int] | None = Field(None, min_length=2, max_length=2,
-                                 description="top-left (x, y) in model-input pixels; default: the crop's own place")
+    at: list[int] | Literal["random"] | None = Field(
+        None, description="top-left [x, y] in model-input pixels, or \"random\" (a seeded place per image); "
+                          "default: the crop's own place")
+    seed: int = Field(0, ge=0, le=2_147_483_647, description="with at = \"random\": the places are drawn from it")
     image: str | None = Field(None, description="for crop: the image's path relative to the dataset root")
     box: list[int] | None = Field(None, min_length=4, max_length=4, description="for crop: x0, y0, x1, y1")
     patch_png: str | None = Field(None, description="for upload: the PNG as base64 or a data: URL")
@@ -171,27 +175,29 @@ def _injection(req: InjectionRequest | None, model: Any, dataset_root: Path,
                policy: Policy | None) -> InjectionSpec | None:
     if req is None:
         return None
-    at = tuple(req.at) if req.at else None
+    if isinstance(req.at, list) and len(req.at) != 2:
+        raise BadParameterError(f"'at' must be two whole numbers [x, y] or \"random\"; received {req.at!r}")
+    at: Any = req.at if req.at == "random" else (tuple(req.at) if req.at else None)
     if req.kind == "demo_tag":
         tag = demo_models_dir() / "policy-demo-tag.png"
         if not tag.is_file():
             raise NotFoundError("the demo tag picture is not installed (demo_models/policy-demo-tag.png)")
         patch = np.asarray(read_image(tag).pil.convert("RGB"), dtype=np.uint8).copy()
         return InjectionSpec(patch=patch, suspect_class=req.suspect_class, at=at or (78, 78),
-                             source="demo tag", limit=req.limit)
+                             source="demo tag", limit=req.limit, seed=req.seed)
     if req.kind == "crop":
         if not req.image or not req.box:
             raise BadParameterError("a cropped patch needs 'image' (path in the dataset) and 'box' [x0, y0, x1, y1]")
         path = resolve_inside(dataset_root, req.image)
         patch = crop_patch(model, path, tuple(req.box))
         return InjectionSpec(patch=patch, suspect_class=req.suspect_class, at=at or (req.box[0], req.box[1]),
-                             source=f"cut from {req.image} box {list(req.box)}", limit=req.limit)
+                             source=f"cut from {req.image} box {list(req.box)}", limit=req.limit, seed=req.seed)
     if not req.patch_png:
         raise BadParameterError("an uploaded patch needs 'patch_png'")
     if at is None:
         raise BadParameterError("an uploaded patch needs 'at' [x, y]: where to paste it")
     return InjectionSpec(patch=_decode_png(req.patch_png), suspect_class=req.suspect_class, at=at,
-                         source="uploaded", limit=req.limit)
+                         source="uploaded", limit=req.limit, seed=req.seed)
 
 
 def _job_view(request: Request, ws: Workspace, job_id: str) -> dict:
@@ -216,8 +222,10 @@ def _run_list_entry(run: Any, settings: Settings) -> dict:
 def _launch(request: Request, ws: Workspace, store: Store, *, model_name: str, dataset_path: Path,
             settings: AuditSettings, injection_req: InjectionRequest | None, background_swap: bool,
             gallery: GallerySpec | None, policy: Policy | None, description: str,
-            prebuilt_injection: InjectionSpec | None = None, claimed: str | None = None) -> dict:
+            prebuilt_injection: InjectionSpec | None = None, claimed: str | None = None,
+            dataset: Dataset | None = None) -> dict:
     spec = ws.specs[model_name]
+    checked_dataset = dataset
     live: dict[str, Any] = {"phase": "queued", "run_id": None, "root": str(dataset_path)}
     claims: RunClaims = request.app.state.audit_claims
 
@@ -233,7 +241,7 @@ def _launch(request: Request, ws: Workspace, store: Store, *, model_name: str, d
         # A private copy: the audit must not share hooks or thread settings with interactive requests.
         model = load_model(spec, trust_pickled=ws.settings.trust_pickled)
         live["phase"] = "reading files"
-        dataset = load_dataset(dataset_path, confine=True, progress=progress, cancel=cancel)
+        dataset = checked_dataset or load_dataset(dataset_path, confine=True, progress=progress, cancel=cancel)
         injection = prebuilt_injection or _injection(injection_req, model, dataset.root, policy)
         outcome = run_audit(
             model, dataset, store=store, settings=settings, injection=injection, background_swap=background_swap,
@@ -299,13 +307,21 @@ def start(body: AuditRequest, request: Request, ws: Workspace = Depends(get_work
     ws.check_job(ws.model(name), audit_settings.method, audit_settings.params)  # per-image memory limits
     policy = _policy(body.policy)
     if body.injection is None and policy is not None and policy.injection is not None:
+        at = policy.injection.at
         body.injection = InjectionRequest(kind="demo_tag", suspect_class=policy.injection.suspect_class,
-                                          at=list(policy.injection.at))
+                                          at=at if isinstance(at, str) else list(at), seed=policy.injection.seed)
     dataset_path = _dataset_path(request, settings, body.source)
     gallery = GallerySpec(layer=body.gallery_layer, top=body.gallery_top) if body.gallery_layer else None
+    # Bad input (one class, a class with one image, a patch larger than the input, an unknown suspect
+    # class, a layer Grad-CAM cannot use) is a 4xx here, before a job or a stored run exists.
+    lm = ws.model(name)
+    dataset = load_dataset(dataset_path, confine=True)
+    injection = _injection(body.injection, lm, dataset.root, policy)
+    check_audit_inputs(lm, dataset, audit_settings, injection=injection)
     return _launch(request, ws, store, model_name=name, dataset_path=dataset_path, settings=audit_settings,
-                   injection_req=body.injection, background_swap=body.background_swap, gallery=gallery,
-                   policy=policy, description=f"audit of {dataset_path.name} with {name} ({body.method})")
+                   injection_req=None, background_swap=body.background_swap, gallery=gallery,
+                   policy=policy, description=f"audit of {dataset_path.name} with {name} ({body.method})",
+                   prebuilt_injection=injection, dataset=dataset)
 
 
 @api.get("/jobs/{job_id}", summary="Progress of an audit job: phase, counts, time left, run id")

@@ -35,11 +35,12 @@ import uuid
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Self
-
-import numpy as np
+from typing import TYPE_CHECKING, Any, Self
 
 from pellucid.core.errors import NotFoundError, StoreError
+
+if TYPE_CHECKING:  # numpy loads with the first array: listing runs stays quick to start
+    import numpy as np
 
 __all__ = [
     "DB_NAME",
@@ -415,6 +416,8 @@ class Store:
 
     def put_array(self, array: np.ndarray) -> str:
         buf = io.BytesIO()
+        import numpy as np
+
         np.save(buf, np.ascontiguousarray(array), allow_pickle=False)
         return self.put_bytes(buf.getvalue(), "npy")
 
@@ -434,6 +437,8 @@ class Store:
             raise StoreError(f"artefact {digest[:16]} is listed but its file {str(path)!r} is missing") from None
 
     def get_array(self, digest: str) -> np.ndarray:
+        import numpy as np
+
         return np.load(io.BytesIO(self.get_bytes(digest)), allow_pickle=False)
 
     # -- runs ---------------------------------------------------------------------------------

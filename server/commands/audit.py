@@ -61,7 +61,8 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="cut the suspect patch from this image (as the model sees it) using --inject-box")
     p.add_argument("--inject-box", default=None, metavar="X0,Y0,X1,Y1", help="box of the patch in --inject-from")
     p.add_argument("--inject-at", default=None, metavar="X,Y",
-                   help="where to paste the patch (model-input pixels; default: the box's own place)")
+                   help="where to paste the patch (model-input pixels; default: the box's own place), or "
+                        "'random' for a seeded random place in each image")
     p.add_argument("--inject-class", default=None, metavar="CLASS", help="the class the patch is suspected to cue")
     p.add_argument("--inject-limit", type=int, default=None, metavar="N", help="test at most N images")
     p.add_argument("--background-swap", action="store_true",
@@ -74,9 +75,9 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="torch threads per worker (default 1; results depend on it in the last bits)")
     p.add_argument("--report", action="store_true", help="also write report.html and report.pdf into --out")
     p.add_argument("--trust-pickled", action="store_true", help="allow model specs of kind 'pickled'")
-    p.set_defaults(func=_audit)
     p.add_argument("-q", "--quiet", action="store_true",
                    help="no progress output (a bar on a terminal, else a line every few seconds)")
+    p.set_defaults(func=_audit)
 
 
 def _pair(text: str, what: str, n: int) -> tuple[int, ...]:
@@ -106,9 +107,9 @@ def _params(items: list[str]) -> dict[str, str]:
 
 
 def _read_patch(path: Path) -> np.ndarray:
-    from pellucid.core.model.preprocess import read_image
     import numpy as np
 
+    from pellucid.core.model.preprocess import read_image
 
     return np.asarray(read_image(path).pil.convert("RGB"), dtype=np.uint8).copy()
 
@@ -123,7 +124,8 @@ def build_injection(args: argparse.Namespace, model: Any, policy: Any) -> Any | 
             raise BadParameterError("the injection test needs --inject-class (the class the patch may cue)")
         if args.inject_patch is not None and args.inject_from is not None:
             raise BadParameterError("give either --inject-patch or --inject-from with --inject-box, not both")
-        at = _pair(args.inject_at, "--inject-at", 2) if args.inject_at else None
+        at = ("random" if args.inject_at == "random" else _pair(args.inject_at, "--inject-at", 2)) \
+            if args.inject_at else None
         if args.inject_from is not None:
             if not args.inject_box:
                 raise BadParameterError("--inject-from needs --inject-box X0,Y0,X1,Y1")
@@ -138,14 +140,15 @@ def build_injection(args: argparse.Namespace, model: Any, policy: Any) -> Any | 
             source = f"file {args.inject_patch.resolve()}"
         else:
             raise BadParameterError("--inject-class needs a patch: --inject-patch PNG or --inject-from IMAGE")
-        return InjectionSpec(patch=patch, suspect_class=args.inject_class, at=(int(at[0]), int(at[1])),
+        return InjectionSpec(patch=patch, suspect_class=args.inject_class,
+                             at=at if at == "random" else (int(at[0]), int(at[1])),
                              source=source, limit=args.inject_limit)
     if policy is not None and policy.injection is not None:
         inj = policy.injection
         if not inj.patch.is_file():
             raise BadParameterError(f"the policy's injection patch {str(inj.patch)!r} does not exist")
         return InjectionSpec(patch=_read_patch(inj.patch), suspect_class=inj.suspect_class, at=inj.at,
-                             source=f"policy patch {inj.patch.name}", limit=inj.limit)
+                             source=f"policy patch {inj.patch.name}", limit=inj.limit, seed=inj.seed)
     return None
 
 
@@ -230,10 +233,10 @@ def _audit(args: argparse.Namespace) -> int:
     from pellucid.core.errors import BadParameterError
     from pellucid.core.model.bundled import resolve_model_ref
     from pellucid.core.model.loading import load_model
+    from pellucid.core.provenance import provenance
 
     if args.out.exists() and not args.out.is_dir():
         raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")
-    from pellucid.core.provenance import provenance
     policy = load_policy(args.policy) if args.policy else None
     _resolve_method(args, policy)
     params = _params(args.param)
@@ -267,10 +270,10 @@ def _audit(args: argparse.Namespace) -> int:
         args.out.mkdir(parents=True, exist_ok=True)
         doc = {
             "tool": "pellucid",
+            "provenance": provenance(),
             "run": outcome.run.to_dict(with_summary=False),
             "resumed": outcome.resumed,
             "images_reused": outcome.reused,
-            "provenance": provenance(),
             "images_computed": outcome.computed,
             "model": model.summary(),
             "dataset": dataset.summary(),
@@ -318,11 +321,11 @@ def _audit(args: argparse.Namespace) -> int:
 
 
 def _json_default(value: Any) -> Any:
+    import numpy as np
+
     if isinstance(value, np.generic):
         return value.item()
     if isinstance(value, np.ndarray):
-    import numpy as np
-
         return value.tolist()
     if isinstance(value, (Path, tuple)):
         return str(value) if isinstance(value, Path) else list(value)

@@ -233,9 +233,9 @@ def _top_overlap(a: np.ndarray, b: np.ndarray, share: float = 0.1) -> float:
     return len(top_a & top_b) / k
 
 
-@pytest.mark.parametrize("tolerance", [0.05, 0.2])
+@pytest.mark.parametrize("settings", [{}, {"refine_tolerance": 0.6, "drill_down": 0.05}], ids=["defaults", "coarser"])
 @pytest.mark.parametrize("sample", ["sound_tagged_01.png", "chip_plain_01.png"])
-def test_approximate_is_bounded_against_the_loop(tilenet, sample, tolerance):
+def test_approximate_is_bounded_against_the_loop(tilenet, sample, settings):
     tile = REPO / "demo_models" / "tilenet" / "samples" / sample
     if not tile.is_file():
         pytest.skip("the demo samples are not built")
@@ -245,25 +245,28 @@ def test_approximate_is_bounded_against_the_loop(tilenet, sample, tolerance):
     grid, drop, _, _ = occlusion_by_hand(tilenet.module, x, target=target, patch=12, stride=4, baseline="mean",
                                          output="softmax")
     res = occlusion_map(tilenet.module, x, target=target, patch=12, stride=4, baseline="mean", output="softmax",
-                        method="approximate", refine_tolerance=tolerance)
+                        method="approximate", **settings)
     assert res.approximate and res.engine == "approximate"
     assert res.grid.shape == grid.shape
-    # What it claims: the positions marked evaluated were really run, so there it is exact.
-    assert res.evaluated.any()
-    exact_part = np.abs(res.grid[res.evaluated] - grid[res.evaluated])
-    assert float(exact_part.max()) <= REL_TOL * max(float(np.ptp(grid)), 1e-2) + 1e-6
-    claimed = res.details.get("estimated_error") or res.details.get("error_bound")
-    if isinstance(claimed, (int, float)):
-        assert float(np.abs(res.grid - grid).max()) <= float(claimed) + 1e-6
-    # A loose floor whatever it claims (our own bounds). Rank correlation over the whole grid is
-    # not used: most positions of a tile barely move the score and their order is noise. The
-    # linear correlation, the most sensitive tenth of the positions and the map's largest error
-    # as a share of its range are.
-    pearson = float(np.corrcoef(res.grid.ravel(), grid.ravel())[0, 1])
-    assert pearson >= 0.9, pearson
-    assert _top_overlap(res.grid, grid) >= 0.5
-    assert float(np.abs(res.drop - drop).max()) <= 0.25 * float(np.ptp(drop))
-    sensitive = grid >= 0.1 * grid.max()  # where hiding matters, the ranking must hold
-    assert sensitive.sum() >= 5
-    rho = stats.spearmanr(res.grid[sensitive], grid[sensitive]).statistic
-    assert rho >= 0.8, rho
+    spread = float(np.ptp(grid))
+    error = np.abs(res.grid.astype(np.float64) - grid)
+    # What it claims (core/occlusion/approximate.py): the positions marked evaluated were really run,
+    # so there it is exact; the rest is interpolated, and a seeded sample of those was evaluated to
+    # measure the interpolation's error, which it reports.
+    assert res.evaluated.any() and not res.evaluated.all()
+    assert float(error[res.evaluated].max()) <= REL_TOL * spread + 1e-6
+    sampled = res.details["sampled_error"]
+    assert sampled["positions"] == min(12, sampled["interpolated_positions"]) > 0
+    assert int((~res.evaluated).sum()) == sampled["interpolated_positions"] - sampled["positions"]
+    # The sample estimates the error, it does not bound it; the estimate must still be of the right
+    # size: the true mean error over the positions left interpolated, within 3× the reported one
+    # plus 0.5% of the range (our own tolerance for a 12-position sample).
+    true_mean = float(error[~res.evaluated].mean())
+    assert true_mean <= 3 * sampled["mean_abs"] + 0.005 * spread, (true_mean, sampled)
+    # A loose floor whatever it claims (our own bounds): no position off by more than a tenth of the
+    # range, the ranking of positions and the most sensitive tenth of them survive.
+    assert float(error.max()) <= 0.1 * spread
+    assert float(np.abs(res.drop - drop).max()) <= 0.1 * float(np.ptp(drop))
+    rho = stats.spearmanr(res.grid.ravel(), grid.ravel()).statistic
+    assert rho >= 0.75, rho
+    assert _top_overlap(res.grid, grid) >= 0.75

@@ -35,6 +35,8 @@ def _commands(store: Path) -> dict[str, list[str]]:
         "pellucid runs list": [py, "-m", "pellucid", "runs", "list", "--store", str(store)],
         "pellucid models": [py, "-m", "pellucid", "models"],
         "pellucid audit --help": [py, "-m", "pellucid", "audit", "--help"],
+        # report draws figures, so it needs matplotlib, but not torch: its imports alone
+        "pellucid report (imports)": [py, "-c", "import pellucid.cli, pellucid.core.audit.report"],
     }
 
 

@@ -176,10 +176,17 @@
     const diff = await api(`/api/audits/compare?first=${encodeURIComponent(first)}&second=${encodeURIComponent(second)}`);
     const body = clear($("#compare-body"));
     body.append(el("p", { text: `${diff.first.id} → ${diff.second.id}: same model ${diff.same_model ? "yes" : "no"}, same images ${diff.same_dataset ? "yes" : "no"}.` }));
+    const verdictOf = (g) => (g ? `${g.passed ? "PASS" : "FAIL"} under “${g.policy}”` : "no policy");
+    body.append(el("p", { class: "verdict-change", text: `Verdict: ${verdictOf(diff.gate.first)} → ${verdictOf(diff.gate.second)}.` }));
+    for (const [side, g] of [["first", diff.gate.first], ["second", diff.gate.second]]) {
+      if (g && g.failed.length) body.append(el("ul", { class: "checks" }, g.failed.map((f) => el("li", { class: "check-fail", text: `${side} run: ${f}` }))));
+    }
     const rows = [["accuracy", diff.accuracy], ["flagged share", diff.flagged_fraction], ["injection flip rate", diff.injection_flip_rate]];
     for (const [c, v] of Object.entries(diff.per_class)) {
       if (v.only_in) continue;
-      rows.push([`${c}: accuracy`, v.accuracy], [`${c}: on object`, v.object_share], [`${c}: bottom-right share`, v.bottom_right_share]);
+      rows.push([`${c}: accuracy`, v.accuracy]);
+      if (v.object_share.first !== null || v.object_share.second !== null) rows.push([`${c}: on object`, v.object_share]);
+      rows.push([`${c}: bottom-right share`, v.bottom_right_share]);
     }
     body.append(el("table", { class: "ledger" }, [
       el("thead", {}, el("tr", {}, ["measure", "first", "second", "change"].map((h) => el("th", { scope: "col", text: h })))),
@@ -200,15 +207,17 @@
   }
 
   function classTable(s) {
-    const head = ["class", "images", "accuracy", "on object", "pointing game", "energy pointing", "border", "largest corner", "no evidence"];
+    const objects = Boolean(s.object && s.object.images);
+    const head = ["class", "images", "accuracy", ...(objects ? ["on object", "pointing game", "energy pointing"] : []), "border", "largest corner", "no evidence"];
     const rows = Object.entries(s.per_class).map(([c, v]) => {
       const corners = ["top_left", "top_right", "bottom_left", "bottom_right"];
       const worst = corners.reduce((a, b) => ((v.regions[b].mean_share || 0) > (v.regions[a].mean_share || 0) ? b : a));
       const flagged = v.regions[worst].flagged;
       return el("tr", { class: flagged ? "flagged-row" : "" }, [
         el("th", { scope: "row", text: c }), el("td", { class: "num", text: v.images }), el("td", { class: "num", text: pct(v.accuracy) }),
-        el("td", { class: "num", text: pct(v.object_share) }), el("td", { class: "num", text: pct(v.pointing_accuracy) }),
-        el("td", { class: "num", text: pct(v.energy_pointing) }), el("td", { class: "num", text: pct(v.regions.border.mean_share) }),
+        ...(objects ? [el("td", { class: "num", text: pct(v.object_share) }), el("td", { class: "num", text: pct(v.pointing_accuracy) }),
+          el("td", { class: "num", text: pct(v.energy_pointing) })] : []),
+        el("td", { class: "num", text: pct(v.regions.border.mean_share) }),
         el("td", { class: "num", title: `${(v.regions[worst].concentration || 0).toFixed(1)}× its share of the area`,
                    text: `${pct(v.regions[worst].mean_share)} (${worst.replace("_", "-")})` }),
         el("td", { class: "num", text: v.no_evidence }),
@@ -244,9 +253,13 @@
       verdict.append(el("p", { class: "warning", text: `This run is ${run.status} (${run.done} of ${run.total} images stored).` + (run.resumable ? " Resume it from the list above." : "") }));
       return;
     }
-    if (s.gate) {
-      verdict.append(el("p", { class: "gate-" + (s.gate.passed ? "pass" : "fail"), text: `Gate ${s.gate.passed ? "PASS" : "FAIL"} under policy “${s.gate.policy.name}”: ${s.gate.checks.filter((c) => c.status === "fail").length} of ${s.gate.checks.length} checks failed.` }));
-      verdict.append(el("ul", { class: "checks" }, s.gate.checks.map((c) => el("li", { class: "check-" + c.status.replace("/", ""), title: c.meaning }, [el("strong", { text: c.status.toUpperCase() + " " }), c.sentence]))));
+    const gate = run.gate;
+    if (gate) {
+      const sha = gate.policy.sha256 ? ` (policy sha256 ${gate.policy.sha256.slice(0, 12)}…)` : "";
+      verdict.append(el("p", { class: "gate-" + (gate.passed ? "pass" : "fail"), text: `Gate ${gate.passed ? "PASS" : "FAIL"} under policy “${gate.policy.name}”${sha}: ${gate.checks.filter((c) => c.status === "fail").length} of ${gate.checks.length} checks failed. Stored with the run.` }));
+      verdict.append(el("ul", { class: "checks" }, gate.checks.map((c) => el("li", { class: "check-" + c.status.replace("/", ""), title: c.meaning }, [el("strong", { text: c.status.toUpperCase() + " " }), c.sentence]))));
+    } else {
+      verdict.append(el("p", { class: "note", text: "No policy judged this run. Start the audit with a policy, or judge the stored run from the command line: pellucid report RUN --policy FILE." }));
     }
     facts($("#run-facts"), [
       ["Status", `${run.status}, ${run.done} of ${run.total} images`],
@@ -267,7 +280,7 @@
     $("#mean-colorbar").src = mm.scale.colorbar;
 
     const fl = await api(`/api/audits/runs/${encodeURIComponent(run.id)}/flagged`);
-    $("#flagged-note").textContent = `${fl.flagged_count} image(s) flagged, most suspect first: most evidence off the object, or piled up in a corner or the border.`;
+    $("#flagged-note").textContent = `${fl.flagged_count} image(s) flagged, most suspect first: ` + (s.object && s.object.images ? "most evidence off the annotated object, or piled up in a corner or the border." : "evidence piled up in a corner or the border.");
     const grid = clear($("#flagged"));
     for (const f of fl.images) {
       grid.append(el("figure", { class: "flagged-item" }, [
@@ -280,10 +293,11 @@
     const inj = s.injection;
     $("#injection-box").hidden = !inj;
     if (inj) {
-      $("#injection-text").textContent = `Pasting the ${inj.settings.patch_size.join("×")} px patch (${inj.settings.source}) at ${inj.settings.at.join(", ")} onto ${inj.tested} image(s) of other classes flips ${pct(inj.flip_rate)} of those not already called “${inj.settings.suspect_class}” (${inj.flips} of ${inj.eligible}) to it; the probability of “${inj.settings.suspect_class}” moves by ${fmt(inj.mean_shift)} on average.`;
+      $("#injection-text").textContent = `${inj.settings.patch_size.join("×")} px patch (${inj.settings.source}). ${run.injection_sentence}`;
       const t = clear($("#injection-table"));
-      t.append(el("thead", {}, el("tr", {}, ["class", "tested", "not already suspect", "flips", "flip rate", "mean shift"].map((h) => el("th", { scope: "col", text: h })))));
-      t.append(el("tbody", {}, Object.entries(inj.per_class).map(([c, v]) => el("tr", {}, [el("th", { scope: "row", text: c }), el("td", { class: "num", text: v.tested }), el("td", { class: "num", text: v.eligible }), el("td", { class: "num", text: v.flips }), el("td", { class: "num", text: pct(v.flip_rate) }), el("td", { class: "num", text: fmt(v.mean_shift) })]))));
+      t.append(el("thead", {}, el("tr", {}, ["class", "other-class images", "skipped (already carry it)", "tested", "eligible", "flips", "flip rate", "mean shift"].map((h) => el("th", { scope: "col", text: h })))));
+      const dash = (x) => (x === undefined || x === null ? "—" : x);
+      t.append(el("tbody", {}, Object.entries(inj.per_class).map(([c, v]) => el("tr", {}, [el("th", { scope: "row", text: c }), el("td", { class: "num", text: dash(v.considered) }), el("td", { class: "num", text: dash(v.skipped) }), el("td", { class: "num", text: v.tested }), el("td", { class: "num", text: v.eligible }), el("td", { class: "num", text: v.flips }), el("td", { class: "num", text: pct(v.flip_rate) }), el("td", { class: "num", text: v.mean_shift === null ? "—" : fmt(v.mean_shift) })]))));
       const ex = clear($("#injection-examples"));
       for (const e of inj.examples) {
         const base = `/api/audits/runs/${encodeURIComponent(run.id)}/artefact?name=`;
@@ -310,6 +324,13 @@
           el("span", { class: "note means", text: Object.entries(c.class_means).map(([k, v]) => `${k} ${fmt(v, 2)}`).join(" · ") }),
         ]));
       }
+    }
+    const unreadable = run.unreadable || [];
+    $("#unreadable-box").hidden = unreadable.length === 0;
+    const ut = clear($("#unreadable-table"));
+    if (unreadable.length) {
+      ut.append(el("thead", {}, el("tr", {}, ["image", "stage", "reason"].map((h) => el("th", { scope: "col", text: h })))));
+      ut.append(el("tbody", {}, unreadable.map((u) => el("tr", {}, [el("td", { class: "mono", text: u.rel }), el("td", { text: u.stage }), el("td", { text: u.reason })]))));
     }
     $("#run-settings").textContent = `${run.command ? "Command: " + run.command + "\n\n" : ""}Model ${run.model_name}, sha256 ${run.model_fingerprint}\nSpec ${run.model_spec}\nDataset ${run.dataset_root}, hash ${run.dataset_hash}\nPellucid ${run.tool_version}\n\n` + JSON.stringify(run.settings, null, 2);
     view.scrollIntoView({ behavior: "smooth", block: "start" });

@@ -61,7 +61,12 @@ def test_full_audit_through_the_api(client: TestClient) -> None:
 
     run = client.get(f"/api/audits/runs/{run_id}").json()
     s = run["summary"]
-    assert s["gate"]["policy"]["name"] == "demo tile line gate"
+    gate = run["gate"]  # stored with the run, failed checks first
+    assert gate["policy"]["name"] == "demo tile line gate" and gate["policy"]["sha256"]
+    statuses = [c["status"] for c in gate["checks"]]
+    assert statuses == sorted(statuses, key=lambda st: st != "fail")
+    assert entry["gate"] == ("pass" if gate["passed"] else "fail")
+    assert run["injection_sentence"].startswith("Pasting the suspect patch")
     assert s["injection"]["settings"]["source"] == "demo tag"
     assert "evidence" in run["caution"]
 

@@ -20,7 +20,8 @@ from conftest import png_bytes
 from torch import nn
 
 from pellucid.core.audit.dataset import load_dataset
-from pellucid.core.audit.injection import SAME_PATCH_LEVELS, injection_sentence, injection_test
+from pellucid.core.audit.injection import SAME_PATCH_LEVELS, injection_test
+from pellucid.core.audit.sentences import injection_sentence
 from pellucid.core.audit.settings import InjectionSpec
 from pellucid.core.errors import BadParameterError
 from pellucid.core.model.loading import load_model

@@ -134,3 +134,70 @@ def test_damaged_database(tmp_path: Path) -> None:
     (tmp_path / DB_NAME).write_bytes(b"this is not a database file at all" * 200)
     with pytest.raises(StoreError, match=r"move pellucid.db aside"):
         Store(tmp_path)
+
+
+# A store written by Pellucid's schema version 1 (before the gate column), exactly as it created it.
+_V1_SCHEMA = """
+CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE runs (id TEXT PRIMARY KEY, created REAL NOT NULL, updated REAL NOT NULL, finished REAL,
+    status TEXT NOT NULL, model_name TEXT NOT NULL, model_fingerprint TEXT NOT NULL, model_spec TEXT,
+    dataset_root TEXT NOT NULL, dataset_hash TEXT NOT NULL, method TEXT NOT NULL, settings TEXT NOT NULL,
+    settings_key TEXT NOT NULL, tool_version TEXT NOT NULL, command TEXT, total INTEGER NOT NULL DEFAULT 0,
+    done INTEGER NOT NULL DEFAULT 0, owner TEXT, dataset TEXT, summary TEXT, error TEXT);
+CREATE INDEX runs_key ON runs (model_fingerprint, dataset_hash, settings_key);
+CREATE TABLE results (run_id TEXT NOT NULL REFERENCES runs (id) ON DELETE CASCADE, item INTEGER NOT NULL,
+    rel TEXT NOT NULL, sha256 TEXT NOT NULL, label TEXT NOT NULL, status TEXT NOT NULL, data TEXT NOT NULL,
+    map_hash TEXT, PRIMARY KEY (run_id, rel));
+CREATE TABLE run_artefacts (run_id TEXT NOT NULL REFERENCES runs (id) ON DELETE CASCADE, name TEXT NOT NULL,
+    hash TEXT NOT NULL, PRIMARY KEY (run_id, name));
+CREATE TABLE artefacts (hash TEXT PRIMARY KEY, kind TEXT NOT NULL, size INTEGER NOT NULL, created REAL NOT NULL);
+INSERT INTO meta VALUES ('schema', '1');
+"""
+
+
+def _v1_store(folder: Path, summary: dict) -> None:
+    folder.mkdir(parents=True)
+    db = sqlite3.connect(folder / DB_NAME)
+    db.executescript(_V1_SCHEMA)
+    db.execute("INSERT INTO runs (id, created, updated, finished, status, model_name, model_fingerprint, dataset_root, "
+               "dataset_hash, method, settings, settings_key, tool_version, total, done, summary) VALUES "
+               "('old-run', 1, 1, 2, 'done', 'm', ?, '/d', ?, 'gradcam', '{}', 'k', '0.1.0', 1, 1, ?)",
+               ("f" * 64, "d" * 64, json.dumps(summary)))
+    db.execute("INSERT INTO results VALUES ('old-run', 0, 'a.png', ?, 'crack', 'done', '{\"x\": 1}', NULL)",
+               ("1" * 64,))
+    db.commit()
+    db.close()
+
+
+def test_version_1_store_is_migrated_and_keeps_its_runs(tmp_path: Path) -> None:
+    gate = {"passed": False, "policy": {"name": "old gate", "sha256": "a" * 64},
+            "checks": [{"key": "min_accuracy", "scope": "run", "status": "fail", "sentence": "run: accuracy …"}]}
+    _v1_store(tmp_path / "old", {"accuracy": 0.5, "gate": gate})
+    with Store(tmp_path / "old") as store:
+        run = store.get_run("old-run")
+        assert run.gate == gate and run.verdict == "fail"  # the gate moved out of the summary into its column
+        assert run.summary == {"accuracy": 0.5}
+        assert [r.rel for r in store.results("old-run")] == ["a.png"]
+        assert store.integrity_check() == "ok"
+    db = sqlite3.connect(tmp_path / "old" / DB_NAME)
+    assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()[0] == "2"
+    db.close()
+    with Store(tmp_path / "old") as store:  # opening again changes nothing
+        assert store.get_run("old-run").gate == gate
+
+
+def test_gate_is_stored_with_the_run_and_a_newer_store_is_refused(tmp_path: Path) -> None:
+    with Store(tmp_path / "s") as store:
+        run = _run(store)
+        assert run.gate is None and run.verdict is None
+        gate = {"passed": True, "policy": {"name": "p", "sha256": "b" * 64}, "checks": []}
+        assert store.set_gate(run.id, gate).gate == gate
+        assert store.get_run(run.id).to_dict(with_summary=False)["verdict"] == "pass"
+        with pytest.raises(NotFoundError):
+            store.set_gate("no-such-run", gate)
+    db = sqlite3.connect(tmp_path / "s" / DB_NAME)
+    db.execute("UPDATE meta SET value='3' WHERE key='schema'")
+    db.commit()
+    db.close()
+    with pytest.raises(StoreError, match="schema version 3, newer than"):
+        Store(tmp_path / "s")

@@ -267,6 +267,8 @@ def _audit(args: argparse.Namespace) -> int:
         )
         summary = outcome.summary
         result = evaluate_policy(policy, summary, labels=model.labels) if policy else None
+        if result is not None:  # the verdict travels with the run (runs list, report, dashboard)
+            outcome.run = store.set_gate(outcome.run.id, result.to_dict())
         args.out.mkdir(parents=True, exist_ok=True)
         doc = {
             "tool": "pellucid",
@@ -286,7 +288,7 @@ def _audit(args: argparse.Namespace) -> int:
         if args.report:
             from pellucid.core.audit.report import write_report
 
-            files = write_report(store, outcome.run.id, args.out, policy=policy)
+            files = write_report(store, outcome.run.id, args.out)  # shows the verdict stored above
             print(f"report: {', '.join(str(f) for f in files)}")
     finally:
         store.close()
@@ -303,9 +305,11 @@ def _audit(args: argparse.Namespace) -> int:
     for flag in summary["class_flags"]:
         print(f"flag: {flag['sentence']}")
     if summary.get("injection"):
-        inj = summary["injection"]
-        print(f"injection: pasting the patch flips {_pct(inj['flip_rate'])} of {inj['eligible']} image(s) to "
-              f"{inj['settings']['suspect_class']!r}; mean probability shift {inj['mean_shift']:+.3f}")
+        from pellucid.core.audit.sentences import injection_sentence
+
+        print(f"injection: {injection_sentence(summary['injection'])}")
+    for entry in summary.get("failed", []):
+        print(f"not audited: {entry['rel']}: {entry['reason']}")
     print(f"summary: {args.out / 'summary.json'}")
     if result is None:
         return EXIT_OK

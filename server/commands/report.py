@@ -18,7 +18,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("run", help="run id (or a unique prefix); 'pellucid runs list' shows them")
     p.add_argument("--out", type=Path, required=True, metavar="DIR", help="folder to write the report into")
     p.add_argument("--policy", type=Path, default=None, metavar="POLICY.toml",
-                   help="also show this policy's verdict on the run")
+                   help="judge the run's stored measures against this policy (nothing is re-run); without it the "
+                        "report shows the verdict stored with the run")
     p.add_argument("--store", type=Path, default=None, metavar="DIR",
                    help="data folder (default: $PELLUCID_DATA or ./.pellucid)")
     p.add_argument("--no-pdf", dest="pdf", action="store_false", help="write the HTML report only")
@@ -36,6 +37,16 @@ def _report(args: argparse.Namespace) -> int:
     policy = load_policy(args.policy) if args.policy else None
     with Store(args.store or default_data_dir()) as store:
         files = write_report(store, args.run, args.out, policy=policy, pdf=args.pdf)
+        run = store.get_run(args.run)
     for f in files:
         print(f"wrote {f}")
+    from pellucid.core.audit.policy import evaluate_policy, gate_of, gate_sentence
+
+    if policy is not None:
+        gate = evaluate_policy(policy, run.summary or {}, labels=(run.summary or {}).get("labels", [])).to_dict()
+        print(f"{gate_sentence(gate)} (judged now from the stored measures; the audit was not re-run)")
+    elif gate_of(run):
+        print(f"{gate_sentence(gate_of(run))} (stored with the run)")
+    else:
+        print("gate: no policy judged this run; --policy FILE judges its stored measures")
     return 0

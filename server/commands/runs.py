@@ -63,11 +63,16 @@ def _list(args: argparse.Namespace) -> int:
     if not runs:
         print("no stored audit runs (start one with 'pellucid audit')")
         return 0
-    print(f"{'run':<24} {'status':<11} {'images':>9} {'method':<12} {'model':<22} {'accuracy':>8}  started")
+    from pellucid.core.audit.policy import gate_of
+
+    print(f"{'run':<24} {'status':<11} {'images':>9} {'method':<12} {'model':<22} {'accuracy':>8} "
+          f"{'verdict':<8} started")
     for r in runs:
         acc = _pct((r.summary or {}).get("accuracy")) if r.summary else "—"
+        gate = gate_of(r)
+        verdict = "—" if not gate else ("PASS" if gate.get("passed") else "FAIL")
         print(f"{r.id:<24} {r.status:<11} {f'{r.done}/{r.total}':>9} {r.method:<12} {r.model_name[:22]:<22} "
-              f"{acc:>8}  {_when(r.created)}")
+              f"{acc:>8} {verdict:<8} {_when(r.created)}")
     return 0
 
 
@@ -86,6 +91,7 @@ def _show(args: argparse.Namespace) -> int:
     print(f"tool version {run.tool_version}; re-run with: {run.command or '(not recorded)'}")
     if run.error:
         print(f"error: {run.error}")
+    _print_gate(run)
     if s:
         print(f"accuracy {_pct(s.get('accuracy'))}; flagged images {s.get('flagged_count')}")
         for c, v in s.get("per_class", {}).items():
@@ -96,9 +102,28 @@ def _show(args: argparse.Namespace) -> int:
         for f in s.get("class_flags", []):
             print(f"flag: {f['sentence']}")
         if s.get("injection"):
-            print(f"injection flip rate {_pct(s['injection']['flip_rate'])}, mean shift "
-                  f"{s['injection']['mean_shift']:+.3f}")
+            from pellucid.core.audit.sentences import injection_sentence
+
+            print(f"injection: {injection_sentence(s['injection'])}")
+    from pellucid.core.audit.sentences import unreadable_images
+
+    for u in unreadable_images(run.dataset, run.summary):
+        print(f"not used: {u['rel']} ({u['stage']}): {u['reason']}")
     return 0
+
+
+def _print_gate(run) -> None:
+    """The stored verdict, then every failed check (failed checks first, as stored)."""
+    from pellucid.core.audit.policy import failed_first, gate_of, gate_sentence
+
+    gate = gate_of(run)
+    if not gate:
+        print("gate: no policy judged this run ('pellucid report RUN --policy FILE' judges it)")
+        return
+    print(gate_sentence(gate))
+    for check in failed_first(gate.get("checks") or []):
+        if check.get("status") == "fail":
+            print(f"  FAIL {check['sentence']}")
 
 
 def _compare(args: argparse.Namespace) -> int:
@@ -113,14 +138,33 @@ def _compare(args: argparse.Namespace) -> int:
           f"same dataset: {diff['same_dataset']}")
     for key, change in diff["settings_changed"].items():
         print(f"  setting {key}: {change['first']!r} → {change['second']!r}")
+    gate = diff["gate"]
+    print(f"  verdict {_verdict(gate['first'])} → {_verdict(gate['second'])}")
+    for side in ("first", "second"):
+        for line in gate[side]["failed"] if gate[side] else []:
+            print(f"    {side} run FAIL {line}")
     acc = diff["accuracy"]
     print(f"  accuracy {_pct(acc['first'])} → {_pct(acc['second'])}")
     inj = diff["injection_flip_rate"]
     if inj["first"] is not None or inj["second"] is not None:
-        print(f"  injection flip rate {_pct(inj['first'])} → {_pct(inj['second'])}")
+        counts = diff.get("injection_counts", {})
+
+        def of(c: dict | None) -> str:
+            return "—" if not c else (f"{c.get('flips')} of {c.get('eligible')} eligible; {c.get('tested')} tested, "
+                                      f"{c.get('skipped')} skipped")
+
+        print(f"  injection flip rate {_pct(inj['first'])} → {_pct(inj['second'])} "
+              f"({of(counts.get('first'))} → {of(counts.get('second'))})")
     print(f"  class flags {diff['class_flags']['first'] or 'none'} → {diff['class_flags']['second'] or 'none'}")
     print(f"  {len(diff['changed_predictions'])} of {diff['images_in_both']} shared image(s) changed prediction")
     return 0
+
+
+def _verdict(gate: dict | None) -> str:
+    if not gate:
+        return "none (no policy)"
+    sha = gate.get("policy_sha256")
+    return f"{'PASS' if gate['passed'] else 'FAIL'} ({gate['policy']!r}{f', sha256 {sha[:12]}…' if sha else ''})"
 
 
 def _delete(args: argparse.Namespace) -> int:

@@ -12,6 +12,7 @@ from collections.abc import Callable
 import numpy as np
 
 from pellucid.core.audit.measures import CORNERS, REGIONS, positive_part, region_areas
+from pellucid.core.audit.sentences import off_object
 from pellucid.core.audit.settings import AuditSettings
 from pellucid.core.audit.store import ResultRow
 
@@ -56,6 +57,7 @@ def summarise(rows: list[ResultRow], *, labels: list[str], settings: AuditSettin
     for c in present:
         mine = [r for r in done if r.label == c]
         correct = sum(1 for r in mine if r.data["correct"])
+        where = off_object(any(r.data["has_object"] for r in mine))
         regions: dict[str, dict] = {}
         for name in REGIONS:
             values = [r.data["measures"]["regions"][name] for r in mine]
@@ -76,7 +78,7 @@ def summarise(rows: list[ResultRow], *, labels: list[str], settings: AuditSettin
                     "class": c, "region": name, "mean_share": mean, "area": areas[name],
                     "concentration": concentration,
                     "sentence": (f"For class {c!r}, {_pct(mean)} of the positive evidence sits in "
-                                 f"{REGION_WORDS[name]} off the annotated object; that region covers "
+                                 f"{REGION_WORDS[name]}{where}; that region covers "
                                  f"{_pct(areas[name])} of the image ({concentration:.1f}× its share of the area): "
                                  f"a possible shortcut."),
                 })
@@ -146,10 +148,11 @@ def _flag_images(done: list[ResultRow], *, settings: AuditSettings, areas: dict[
         if r.data["has_object"] and share is not None and (1.0 - share) > settings.flag_outside:
             reasons.append(f"{_pct(1.0 - share)} of the evidence lies outside the object")
             score = max(score, 1.0 - share)
+        where = ", off the object" if r.data["has_object"] else ""
         for name in FLAGGABLE_REGIONS:
             value = m["regions_off_object"][name]
             if value is not None and areas[name] > 0 and value / areas[name] >= settings.flag_concentration:
-                reasons.append(f"{_pct(value)} of the evidence sits in {REGION_WORDS[name]}, off the object")
+                reasons.append(f"{_pct(value)} of the evidence sits in {REGION_WORDS[name]}{where}")
                 score = max(score, value)
         if reasons:
             flagged.append({

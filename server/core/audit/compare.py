@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
+from pellucid.core.audit.policy import failed_first, gate_of
 from pellucid.core.audit.store import Store
 from pellucid.core.errors import BadParameterError
 
@@ -18,8 +19,25 @@ def _flat(prefix: str, value: Any, out: dict[str, Any]) -> None:
         out[prefix] = value
 
 
+def _counts(inj: dict | None) -> dict | None:
+    if not inj:
+        return None
+    return {k: inj.get(k) for k in ("considered", "skipped", "tested", "eligible", "flips")}
+
+
 def _delta(a: float | None, b: float | None) -> float | None:
     return None if a is None or b is None else float(b) - float(a)
+
+
+def _gate(run: Any) -> dict | None:
+    """The stored verdict in brief: pass/fail, the policy, and the failed checks' sentences."""
+    gate = gate_of(run)
+    if not gate:
+        return None
+    policy = gate.get("policy") or {}
+    return {"passed": bool(gate.get("passed")), "policy": policy.get("name"), "policy_sha256": policy.get("sha256"),
+            "checks": len(gate.get("checks") or []),
+            "failed": [c["sentence"] for c in failed_first(gate.get("checks") or []) if c.get("status") == "fail"]}
 
 
 def compare_runs(store: Store, first: str, second: str) -> dict:
@@ -57,6 +75,7 @@ def compare_runs(store: Store, first: str, second: str) -> dict:
     ]
     ia, ib = sa.get("injection"), sb.get("injection")
     return {
+        "gate": {"first": _gate(a), "second": _gate(b)},
         "first": a.to_dict(with_summary=False),
         "second": b.to_dict(with_summary=False),
         "same_model": a.model_fingerprint == b.model_fingerprint,
@@ -68,6 +87,7 @@ def compare_runs(store: Store, first: str, second: str) -> dict:
                              "change": _delta(sa.get("flagged_fraction"), sb.get("flagged_fraction"))},
         "class_flags": {"first": [f"{f['class']}:{f['region']}" for f in sa.get("class_flags", [])],
                         "second": [f"{f['class']}:{f['region']}" for f in sb.get("class_flags", [])]},
+        "injection_counts": {"first": _counts(ia), "second": _counts(ib)},
         "injection_flip_rate": {"first": ia.get("flip_rate") if ia else None,
                                 "second": ib.get("flip_rate") if ib else None,
                                 "change": _delta(ia.get("flip_rate") if ia else None,

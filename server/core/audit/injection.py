@@ -34,6 +34,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
+from pellucid.core.audit.sentences import injection_sentence
 from pellucid.core.audit.settings import InjectionSpec
 from pellucid.core.audit.worker import object_mask
 from pellucid.core.errors import BadParameterError
@@ -154,24 +155,6 @@ class InjectionResult:
             "failed": self.failed, "skipped_images": self.skipped_images, "positions": self.positions,
             "same_patch_levels": SAME_PATCH_LEVELS,
         }
-
-
-def injection_sentence(inj: dict) -> str:
-    """One sentence with the flip rate and every count it rests on (CLI, runs show, report, page)."""
-    c = inj["settings"]["suspect_class"]
-    rate = "n/a" if inj.get("flip_rate") is None else f"{100 * inj['flip_rate']:.1f}%"
-    tested = inj.get("tested", 0)
-    skipped = inj.get("skipped")
-    considered = inj.get("considered", tested + (skipped or 0))
-    already = inj.get("already_suspect", tested - inj.get("eligible", 0))
-    where = "at a random place in each image" if inj["settings"].get("at") == "random" else \
-        f"at {inj['settings'].get('at')}"
-    shift = "n/a" if inj.get("mean_shift") is None else f"{inj['mean_shift']:+.3f}"
-    counts = (f"{considered} image(s) of other classes, {skipped} skipped because they already carry the patch, "
-              if skipped is not None else f"{considered} image(s) of other classes, ")
-    return (f"Pasting the suspect patch {where} flips {inj.get('flips', 0)} of {inj.get('eligible', 0)} eligible "
-            f"image(s) to {c!r} (flip rate {rate}); {counts}{tested} tested, {already} of them already called "
-            f"{c!r}; mean change of p({c}) over the tested images {shift}.")
 
 
 def _displays(model: LoadedModel, items: list[dict], *, progress: ProgressFn | None,

@@ -47,6 +47,7 @@ from __future__ import annotations
 import difflib
 import hashlib
 import math
+import time
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -63,6 +64,9 @@ __all__ = [
     "Policy",
     "PolicyResult",
     "evaluate_policy",
+    "failed_first",
+    "gate_of",
+    "gate_sentence",
     "load_policy",
     "parse_policy",
 ]
@@ -72,9 +76,11 @@ THRESHOLDS: dict[str, tuple[str, str, str, str]] = {
     "min_accuracy": ("run", "fraction", ">=", "share of all images predicted correctly"),
     "min_class_accuracy": ("class", "fraction", ">=", "share of the class's images predicted correctly"),
     "max_corner_share": ("class", "fraction", "<=",
-                         "mean share of the class's positive evidence in any one corner box, off the object"),
+                         "mean share of the class's positive evidence in any one corner box (only evidence off the "
+                         "object counts where boxes or masks are given)"),
     "max_border_share": ("class", "fraction", "<=",
-                         "mean share of the class's positive evidence in the border band, off the object"),
+                         "mean share of the class's positive evidence in the border band (only evidence off the "
+                         "object counts where boxes or masks are given)"),
     "min_object_share": ("class", "fraction", ">=", "mean share of the class's positive evidence on the object"),
     "min_pointing_accuracy": ("class", "fraction", ">=",
                               ("pointing game: how often the map's maximum lands on the object (tolerance 15/224 of "
@@ -304,9 +310,38 @@ class PolicyResult:
         return [c for c in self.checks if c.status == "fail"]
 
     def to_dict(self) -> dict:
+        """The gate record stored with a run: failed checks first, each with value, limit and outcome."""
+        ordered = [c for c in self.checks if c.status == "fail"] + [c for c in self.checks if c.status != "fail"]
         return {"passed": self.passed, "policy": self.policy.to_dict(),
-                "checks": [c.to_dict() for c in self.checks],
-                "failed": [f"{c.scope}: {c.key}" for c in self.failures]}
+                "checks": [c.to_dict() for c in ordered],
+                "failed": [f"{c.scope}: {c.key}" for c in self.failures],
+                "evaluated": time.time()}
+
+
+def gate_of(run: Any) -> dict | None:
+    """The gate stored with a run (``RunRecord.gate``; runs stored before that kept it in the summary)."""
+    gate = getattr(run, "gate", None)
+    if gate:
+        return gate
+    summary = getattr(run, "summary", None) or {}
+    return summary.get("gate") if isinstance(summary.get("gate"), dict) else None
+
+
+def failed_first(checks: list[dict]) -> list[dict]:
+    """Checks with the failures first, the rest in their order (for records stored before that order)."""
+    return [c for c in checks if c.get("status") == "fail"] + [c for c in checks if c.get("status") != "fail"]
+
+
+def gate_sentence(gate: dict) -> str:
+    """One line: the verdict, the policy (name and sha256) and how many checks failed."""
+    policy = gate.get("policy") or {}
+    checks = gate.get("checks") or []
+    failed = sum(1 for c in checks if c.get("status") == "fail")
+    sha = policy.get("sha256")
+    named = f"policy {policy.get('name')!r}" + (f" (sha256 {sha[:12]}…)" if sha else "")
+    if gate.get("passed"):
+        return f"gate: PASS — all {len(checks)} check(s) of {named} hold"
+    return f"gate: FAIL — {failed} of {len(checks)} check(s) of {named} failed"
 
 
 def _fmt(key: str, value: float) -> str:
@@ -337,6 +372,7 @@ def _judge(key: str, scope: str, measured: float | None, threshold: float, *, wh
 
 def _class_check(key: str, label: str, stats: dict, threshold: float) -> Check:
     regions = stats["regions"]
+    off = " off the object" if stats.get("with_object") else ""
     if key == "min_class_accuracy":
         return _judge(key, label, stats["accuracy"], threshold, what="accuracy")
     if key == "max_corner_share":
@@ -346,11 +382,11 @@ def _class_check(key: str, label: str, stats: dict, threshold: float) -> Check:
             return _judge(key, label, None, threshold, what="", na="no image of this class has positive evidence")
         worst = max(defined, key=lambda n: defined[n])
         return _judge(key, label, defined[worst], threshold,
-                      what=f"the largest corner share of evidence off the object ({worst.replace('_', '-')})",
+                      what=f"the largest corner share of evidence{off} ({worst.replace('_', '-')})",
                       detail={"region": worst, "corners": corners})
     if key == "max_border_share":
         v = regions["border"]["mean_share"]
-        return _judge(key, label, v, threshold, what="the border band's share of evidence off the object",
+        return _judge(key, label, v, threshold, what=f"the border band's share of evidence{off}",
                       na="no image of this class has positive evidence")
     if stats["with_object"] == 0:
         return _judge(key, label, None, threshold, what="", na="no image of this class has an object box or mask")

@@ -30,7 +30,8 @@ from PIL import Image
 
 from pellucid.core.audit.caution import CAUTION
 from pellucid.core.audit.measures import CORNERS, region_masks
-from pellucid.core.audit.policy import Policy, PolicyResult, evaluate_policy
+from pellucid.core.audit.policy import THRESHOLDS, Policy, evaluate_policy, failed_first, gate_of
+from pellucid.core.audit.sentences import has_objects, injection_sentence, unreadable_images
 from pellucid.core.audit.settings import AuditSettings
 from pellucid.core.audit.store import DONE, RunRecord, Store
 from pellucid.core.errors import BadParameterError, StoreError
@@ -42,24 +43,31 @@ MEASURE_SENTENCES: dict[str, str] = {
     "accuracy": "The share of images whose top-1 class is their true label.",
     "confusion": "Rows are true labels, columns the model's calls; off-diagonal cells are the mistakes.",
     "object_share": "Of the map's positive evidence, the share that lies on the annotated object (box or mask); "
-                    "near 1 means the model looks at the defect itself.",
+                    "near 1 means the evidence sits on what was annotated.",
     "pointing_accuracy": "Pointing game (Zhang et al., ECCV 2016): how often the map's single strongest pixel lands "
                          "on the object, within a tolerance of 15/224 of the input's shorter side (the paper's 15 px "
                          "at 224 px); hits / (hits + misses).",
     "energy_pointing": "Energy-based pointing game (Wang et al., Score-CAM, CVPR-W 2020): the share of the map's "
                        "energy inside the object's bounding box.",
-    "regions": "Share of the positive evidence in the border band, each corner box and the centre, counting only "
-               "evidence off the annotated object; a share far above the region's area points to a shortcut "
-               "such as a stamp, tag or frame.",
+    "regions": "Share of the positive evidence in the border band, each corner box and the centre (corner box = "
+               "1/4 of each side, band = 1/16 of the shorter side, centre = 1/2 of each side){off}; a share far "
+               "above the region's area points to a possible shortcut such as a stamp, a watermark, a ruler or a "
+               "frame.",
     "flags": "A corner or the border is flagged for a class when its share of the evidence is at least "
              "{k:g}× its share of the image area.",
-    "flagged_images": "Images where more than {o:.0%} of the evidence lies off the object, or where a corner or the "
-                      "border holds {k:g}× its share of the area.",
+    "flagged_images": "Images where a corner or the border holds {k:g}× its share of the area{off}.",
+    "flagged_images_objects": "Images where more than {o:.0%} of the evidence lies off the annotated object, or "
+                              "where a corner or the border holds {k:g}× its share of the area.",
     "mean_maps": "Each class's maps, scaled so every image weighs the same, averaged at input resolution; "
                  "1 = as much evidence as a uniform map would put there.",
-    "injection": "The suspect patch is pasted onto images of the other classes; the flip rate is the share of those "
-                 "not already called the suspect class that are afterwards, the shift the mean change of its "
-                 "probability.",
+    "injection": "The suspect patch is pasted onto images of the other classes. Images where the paste changes "
+                 "nothing (they already carry the patch there: at most {levels:g} of 255 levels of change on "
+                 "average under it) are skipped and counted. The flip rate is flips / eligible, where eligible "
+                 "images are the tested ones the model did not already call the suspect class; the shift is the "
+                 "mean change of the suspect class's probability over every tested image.",
+    "unreadable": "Images the audit could not use, with the stage and the reason; they are not in any measure.",
+    "gate": "Each check compares one measure with the policy's limit; failed checks are listed first. A check "
+            "whose measure the audit did not produce fails: missing evidence is not a pass.",
     "background_swap": "Each object is kept and its background replaced by another image's; a model that reads the "
                        "object keeps its accuracy.",
     "gallery": "For the chosen layer, the receptive-field patches where each channel fired hardest over the whole "
@@ -109,10 +117,12 @@ class ReportContent:
     run: RunRecord
     summary: dict
     settings: AuditSettings
-    gate: PolicyResult | None
+    gate: dict | None  # PolicyResult.to_dict(): stored with the run, or judged now under a given policy
     figures: dict[str, Figure]
     pictures: dict[str, bytes]  # name → PNG bytes
     generated: float
+    gate_source: str = "stored"  # "stored" (judged when the audit ran) or "given" (judged now, --policy)
+    stored_gate: dict | None = None
 
 
 def _confusion_figure(summary: dict) -> Figure:
@@ -173,7 +183,7 @@ def _regions_figure(summary: dict) -> Figure:
     areas = [summary["region_areas"][n] for n in names]
     ax.scatter(x, areas, marker="_", s=400, color="black", label="area share", zorder=3)
     ax.set_xticks(x, [n.replace("_", "-") for n in names])
-    ax.set_ylabel("share of evidence off the object")
+    ax.set_ylabel("share of evidence off the object" if has_objects(summary) else "share of positive evidence")
     ax.set_ylim(0, 1)
     ax.legend(fontsize=8, ncol=3)
     ax.set_title("Where the evidence sits, per true class")
@@ -189,7 +199,9 @@ def build_report(store: Store, run_id: str, *, policy: Policy | None = None) -> 
         )
     summary = run.summary
     settings = AuditSettings.from_dict(run.settings["audit"])
-    gate = evaluate_policy(policy, summary, labels=summary["labels"]) if policy else None
+    stored_gate = gate_of(run)
+    # A given policy re-judges the stored measures (nothing is re-run); else the stored verdict is shown.
+    gate = evaluate_policy(policy, summary, labels=summary["labels"]).to_dict() if policy else stored_gate
     figures: dict[str, Figure] = {"confusion": _confusion_figure(summary), "regions": _regions_figure(summary)}
     mm = _mean_maps_figure(store, summary, settings)
     if mm is not None:
@@ -203,7 +215,8 @@ def build_report(store: Store, run_id: str, *, policy: Policy | None = None) -> 
         figures["gallery"] = _gallery_figure(store.get_array(artefacts["gallery/patches"]), summary["gallery"],
                                              pictures)
     return ReportContent(run=run, summary=summary, settings=settings, gate=gate, figures=figures,
-                         pictures=pictures, generated=time.time())
+                         pictures=pictures, generated=time.time(), gate_source="given" if policy else "stored",
+                         stored_gate=stored_gate)
 
 
 def _gallery_figure(patches: np.ndarray, gallery: dict, pictures: dict[str, bytes]) -> Figure:
@@ -255,6 +268,41 @@ def _when(t: float | None) -> str:
     return time.strftime("%Y-%m-%d %H:%M:%S UTC", time.gmtime(t)) if t else "—"
 
 
+def _value(key: str, value: float | None) -> str:
+    if value is None:
+        return "n/a"
+    kind = THRESHOLDS.get(key, ("", "fraction"))[1]
+    if kind == "count":
+        return f"{int(value)}"
+    if kind == "signed":
+        return f"{value:+.3f}"
+    return f"{100 * value:.1f}%"
+
+
+def _gate_blocks(content: ReportContent) -> list[tuple[str, Any]]:
+    """The gate's verdict and every check, failed first, with value and limit."""
+    g = content.gate or {}
+    policy = g.get("policy") or {}
+    checks = failed_first(g.get("checks") or [])
+    failed = sum(1 for c in checks if c.get("status") == "fail")
+    how = ("judged now from the stored measures (the audit was not re-run)" if content.gate_source == "given"
+           else "judged when the audit ran and stored with the run")
+    blocks: list[tuple[str, Any]] = [("text", (
+        f"Gate: {'PASS' if g.get('passed') else 'FAIL'} under policy {policy.get('name')!r} "
+        f"({failed} of {len(checks)} checks failed; policy file {policy.get('path') or '—'}, sha256 "
+        f"{policy.get('sha256') or '—'}); {how}."))]
+    stored = content.stored_gate
+    if content.gate_source == "given" and stored:
+        sp = stored.get("policy") or {}
+        blocks.append(("text", (f"Stored with the run: {'PASS' if stored.get('passed') else 'FAIL'} under policy "
+                                f"{sp.get('name')!r} (sha256 {sp.get('sha256') or '—'}).")))
+    blocks.append(("meaning", MEASURE_SENTENCES["gate"]))
+    blocks.append(("checks", [(c["status"], c["scope"], c["key"], _value(c["key"], c.get("measured")),
+                               f"{c.get('comparison', '')} {_value(c['key'], c.get('threshold'))}", c["sentence"])
+                              for c in checks]))
+    return blocks
+
+
 def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]:
     """The report as (title, [(kind, payload)]) with kinds text, pre, table, figure, pictures."""
     run, s, st = content.run, content.summary, content.settings
@@ -263,25 +311,26 @@ def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]
     out: list[tuple[str, list[tuple[str, Any]]]] = []
     k, o = st.flag_concentration, st.flag_outside
 
+    objects = has_objects(s)
+    off = " (only evidence off the annotated object counts)" if objects else ""
     verdict: list[tuple[str, Any]] = [("caution", CAUTION)]
     if content.gate is not None:
-        g = content.gate
-        verdict.append(("text", (f"Gate: {'PASS' if g.passed else 'FAIL'} under policy {g.policy.name!r} "
-                                f"({len(g.failures)} of {len(g.checks)} checks failed; policy sha256 "
-                                f"{g.policy.sha256}).")))
-        verdict.append(("checks", [(c.status, c.key, c.sentence, c.to_dict()["meaning"]) for c in g.checks]))
+        verdict += _gate_blocks(content)
     else:
-        verdict.append(("text", "No policy was given, so this report shows the measures without a pass/fail verdict."))
+        verdict.append(("text", "No policy judged this run, so this report shows the measures without a pass/fail "
+                                f"verdict; 'pellucid report {run.id} --policy FILE' judges the stored measures "
+                                "against a policy without re-running the audit."))
     flags = s.get("class_flags", [])
     verdict.append(("text", (f"Accuracy {_pct(s.get('accuracy'))} over {s.get('done')} audited images; "
                             f"{len(flags)} class/region flag(s); {s.get('flagged_count')} flagged image(s).")))
     for f in flags:
         verdict.append(("text", f["sentence"]))
     if s.get("injection"):
-        inj = s["injection"]
-        verdict.append(("text", (f"Injection test: pasting the suspect patch flips {_pct(inj['flip_rate'])} of "
-                                f"{inj['eligible']} image(s) to {inj['settings']['suspect_class']!r}; mean "
-                                f"probability shift {inj['mean_shift']:+.3f}.")))
+        verdict.append(("text", "Injection test: " + injection_sentence(s["injection"])))
+    unreadable = unreadable_images(ds, s)
+    if unreadable:
+        verdict.append(("text", f"{len(unreadable)} image(s) could not be used; they are named, with the reason, "
+                                "under 'Images that could not be used'."))
     out.append(("Verdict", verdict))
 
     rerun = [
@@ -315,39 +364,44 @@ def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]
     out.append(("Model", mod))
 
     data_rows = [[c, n] for c, n in ds.get("per_class", {}).items()]
+    annotated = (f"{ds.get('with_box')} with an object box, {ds.get('with_mask')} with a mask"
+                 if ds.get("with_box") or ds.get("with_mask") else "no boxes or masks given")
     dsec: list[tuple[str, Any]] = [
         ("text", (f"{ds.get('images')} readable image(s) from {ds.get('source')} at {ds.get('root')}; "
-                 f"{ds.get('with_box')} with an object box, {ds.get('with_mask')} with a mask; "
-                 f"{len(ds.get('skipped', []))} skipped at intake; {len(s.get('failed', []))} failed in the audit.")),
+                 f"{annotated}; {len(ds.get('skipped', []))} skipped at intake; {len(s.get('failed', []))} failed "
+                 "in the audit.")),
         ("table", (["class", "images"], data_rows)),
     ]
-    skipped = ds.get("skipped", []) + s.get("failed", [])
-    if skipped:
-        dsec.append(("table", (["skipped or failed image", "reason"], [[x["rel"], x["reason"]] for x in skipped])))
     for note in ds.get("notes", []):
         dsec.append(("text", f"Note: {note}"))
     out.append(("Dataset", dsec))
+    if unreadable:
+        out.append(("Images that could not be used", [
+            ("meaning", MEASURE_SENTENCES["unreadable"]),
+            ("table", (["image", "stage", "reason"], [[u["rel"], u["stage"], u["reason"]] for u in unreadable])),
+        ]))
 
-    meas: list[tuple[str, Any]] = [
-        ("meaning", MEASURE_SENTENCES["accuracy"]),
-        ("meaning", MEASURE_SENTENCES["object_share"]),
-        ("meaning", MEASURE_SENTENCES["pointing_accuracy"]),
-        ("meaning", MEASURE_SENTENCES["energy_pointing"]),
-        ("meaning", MEASURE_SENTENCES["regions"]),
-        ("meaning", MEASURE_SENTENCES["flags"].format(k=k)),
-    ]
+    meas: list[tuple[str, Any]] = [("meaning", MEASURE_SENTENCES["accuracy"])]
+    if objects:  # the object measures exist only where boxes or masks were given
+        meas += [("meaning", MEASURE_SENTENCES["object_share"]), ("meaning", MEASURE_SENTENCES["pointing_accuracy"]),
+                 ("meaning", MEASURE_SENTENCES["energy_pointing"])]
+    meas += [("meaning", MEASURE_SENTENCES["regions"].format(off=off)),
+             ("meaning", MEASURE_SENTENCES["flags"].format(k=k))]
     rows = []
+    obj = s.get("object", {})
     for c, v in s.get("per_class", {}).items():
         corner = max(CORNERS, key=lambda n: v["regions"][n]["mean_share"] or 0.0)
-        rows.append([c, v["images"], _pct(v["accuracy"]), _pct(v["object_share"]), _pct(v["pointing_accuracy"]),
-                     _pct(v["energy_pointing"]), _pct(v["regions"]["border"]["mean_share"]),
+        on_object = [_pct(v["object_share"]), _pct(v["pointing_accuracy"]), _pct(v["energy_pointing"])] \
+            if objects else []
+        rows.append([c, v["images"], _pct(v["accuracy"]), *on_object, _pct(v["regions"]["border"]["mean_share"]),
                      f"{_pct(v['regions'][corner]['mean_share'])} ({corner.replace('_', '-')})",
                      _pct(v["regions"]["centre"]["mean_share_all"]), v["no_evidence"]])
-    obj = s.get("object", {})
-    rows.append(["all", s.get("done"), _pct(s.get("accuracy")), _pct(obj.get("object_share")),
-                 _pct(obj.get("pointing_accuracy")), _pct(obj.get("energy_pointing")), "", "", "", ""])
-    meas.append(("table", (["class", "images", "accuracy", "on object", "pointing game", "energy pointing",
-                            "border", "largest corner", "centre", "maps without evidence"], rows)))
+    all_objects = [_pct(obj.get("object_share")), _pct(obj.get("pointing_accuracy")),
+                   _pct(obj.get("energy_pointing"))] if objects else []
+    rows.append(["all", s.get("done"), _pct(s.get("accuracy")), *all_objects, "", "", "", ""])
+    object_heads = ["on object", "pointing game", "energy pointing"] if objects else []
+    meas.append(("table", (["class", "images", "accuracy", *object_heads, "border", "largest corner", "centre",
+                            "maps without evidence"], rows)))
     meas.append(("meaning", MEASURE_SENTENCES["confusion"]))
     meas.append(("figure", "confusion"))
     meas.append(("figure", "regions"))
@@ -357,7 +411,9 @@ def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]
     out.append(("Measures", meas))
 
     flagged = s.get("flagged_images", [])
-    fsec: list[tuple[str, Any]] = [("meaning", MEASURE_SENTENCES["flagged_images"].format(o=o, k=k)),
+    flag_rule = (MEASURE_SENTENCES["flagged_images_objects"].format(o=o, k=k) if objects
+                 else MEASURE_SENTENCES["flagged_images"].format(k=k, off=""))
+    fsec: list[tuple[str, Any]] = [("meaning", flag_rule),
                                    ("text", (f"{s.get('flagged_count', 0)} image(s) flagged "
                                              f"({_pct(s.get('flagged_fraction'))} of those audited), "
                                              "most suspect first."))]
@@ -376,18 +432,25 @@ def _sections(content: ReportContent) -> list[tuple[str, list[tuple[str, Any]]]]
 
     if s.get("injection"):
         inj = s["injection"]
+        st_inj = inj["settings"]
+        levels = inj.get("same_patch_levels", 8.0)
         isec: list[tuple[str, Any]] = [
-            ("meaning", MEASURE_SENTENCES["injection"]),
-            ("text", (f"Suspect class {inj['settings']['suspect_class']!r}; patch {inj['settings']['patch_size'][0]}×"
-                     f"{inj['settings']['patch_size'][1]} px ({inj['settings']['source']}, sha256 "
-                     f"{inj['settings']['patch_sha256'][:16]}…) pasted at {inj['settings']['at']} on "
-                     f"{inj['tested']} image(s); flip rate {_pct(inj['flip_rate'])} ({inj['flips']} of the "
-                     f"{inj['eligible']} not already called the suspect class), "
-                     f"mean probability shift {inj['mean_shift']:+.3f}.")),
-            ("table", (["class", "tested", "not already suspect", "flips", "flip rate", "mean shift"],
-                       [[c, v["tested"], v["eligible"], v["flips"], _pct(v["flip_rate"]), f"{v['mean_shift']:+.3f}"]
+            ("meaning", MEASURE_SENTENCES["injection"].format(levels=levels)),
+            ("text", (f"Suspect class {st_inj['suspect_class']!r}; patch {st_inj['patch_size'][0]}×"
+                     f"{st_inj['patch_size'][1]} px ({st_inj['source']}, sha256 {st_inj['patch_sha256'][:16]}…)"
+                     + (f"; random places drawn from seed {st_inj.get('seed', 0)}" if st_inj.get("at") == "random"
+                        else "") + ".")),
+            ("text", injection_sentence(inj)),
+            ("table", (["class", "other-class images", "skipped (already carry the patch)", "tested", "eligible",
+                        "flips", "flip rate", "mean shift"],
+                       [[c, v.get("considered", v["tested"]), v.get("skipped", "—"), v["tested"], v["eligible"],
+                         v["flips"], _pct(v["flip_rate"]),
+                         "n/a" if v.get("mean_shift") is None else f"{v['mean_shift']:+.3f}"]
                         for c, v in inj["per_class"].items()])),
         ]
+        if inj.get("skipped_images"):
+            isec.append(("table", (["skipped image", "why"],
+                                   [[x["rel"], x["reason"]] for x in inj["skipped_images"][:200]])))
         patch = content.pictures.get("injection/patch")
         if patch:
             isec.append(("pictures", [("the suspect patch", [patch])]))
@@ -452,12 +515,12 @@ def render_html(content: ReportContent) -> str:
             elif kind == "checks":
                 rows = "".join(
                     f"<tr><td class='{ 'na' if st == 'n/a' else st }'>{_e(st.upper())}</td>"
-                    f"<td class='mono'>{_e(key)}</td>"
-                    f"<td>{_e(sentence)}</td><td class='meaning'>{_e(meaning)}</td></tr>"
-                    for st, key, sentence, meaning in payload)
-                parts.append("<table><thead><tr><th scope='col'>result</th><th scope='col'>policy key</th>"
-                             "<th scope='col'>check</th>"
-                             f"<th scope='col'>what it measures</th></tr></thead><tbody>{rows}</tbody></table>")
+                    f"<td>{_e(scope)}</td><td class='mono'>{_e(key)}</td><td class='num'>{_e(value)}</td>"
+                    f"<td class='num'>{_e(limit)}</td><td>{_e(sentence)}</td></tr>"
+                    for st, scope, key, value, limit, sentence in payload)
+                parts.append("<table class='checks'><thead><tr><th scope='col'>result</th><th scope='col'>scope</th>"
+                             "<th scope='col'>policy key</th><th scope='col'>value</th><th scope='col'>limit</th>"
+                             f"<th scope='col'>check</th></tr></thead><tbody>{rows}</tbody></table>")
             elif kind == "figure":
                 png = _fig_png(content.figures[payload])
                 parts.append(f"<figure><img class='fig' alt='{_e(payload)} figure' src='{_data_uri(png)}'></figure>")
@@ -545,7 +608,8 @@ def render_pdf(content: ReportContent, path: Path) -> int:
                 lines.append(("m", " | ".join(map(str, head))))
                 lines += [("m", " | ".join(map(str, r))) for r in rows]
             elif kind == "checks":
-                lines += [("p", f"[{st.upper()}] {key}: {sentence}") for st, key, sentence, _ in payload]
+                lines += [("p", f"[{st.upper()}] {key} ({value}, limit {limit}): {sentence}")
+                          for st, _scope, key, value, limit, sentence in payload]
             elif kind == "figure":
                 lines.append(("p", f"(figure: {payload}, on a page of its own)"))
                 figure_pages.append(content.figures[payload])

@@ -18,6 +18,13 @@ Run states::
 
 A data folder that cannot be written (read-only, full, not a folder, a damaged database) gives
 a :class:`StoreError` when the store opens, not a failure later in the middle of a run.
+
+The verdict travels with the run: ``runs.gate`` holds the gate result (policy name, path and
+sha256, every check with its value, limit and outcome) as JSON, written by :meth:`Store.set_gate`.
+
+Schema versions. 1: runs, results, artefacts. 2: ``runs.gate`` (added in place when a version-1
+store opens; a gate that version 1 kept inside the summary moves into the column). A store newer
+than this Pellucid is refused, never rewritten.
 """
 
 from __future__ import annotations
@@ -54,7 +61,7 @@ __all__ = [
 ]
 
 DB_NAME = "pellucid.db"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 MIN_FREE_BYTES = 32 * 1024 * 1024
 QUEUED, RUNNING, DONE, FAILED, CANCELLED, INTERRUPTED = (
     "queued", "running", "done", "failed", "cancelled", "interrupted")
@@ -92,7 +99,8 @@ CREATE TABLE IF NOT EXISTS runs (
     owner TEXT,
     dataset TEXT,
     summary TEXT,
-    error TEXT
+    error TEXT,
+    gate TEXT
 );
 CREATE INDEX IF NOT EXISTS runs_key ON runs (model_fingerprint, dataset_hash, settings_key);
 CREATE TABLE IF NOT EXISTS results (
@@ -188,6 +196,12 @@ class RunRecord:
     dataset: dict | None
     summary: dict | None
     error: str | None
+    gate: dict | None = None  # the stored gate result (see Store.set_gate), None when no policy judged the run
+
+    @property
+    def verdict(self) -> str | None:
+        """"pass", "fail" or None (no policy judged this run)."""
+        return None if not self.gate else ("pass" if self.gate.get("passed") else "fail")
 
     def to_dict(self, *, with_summary: bool = True) -> dict:
         out = {
@@ -196,6 +210,7 @@ class RunRecord:
             "model_spec": self.model_spec, "dataset_root": self.dataset_root, "dataset_hash": self.dataset_hash,
             "method": self.method, "settings": self.settings, "tool_version": self.tool_version,
             "command": self.command, "total": self.total, "done": self.done, "error": self.error,
+            "verdict": self.verdict, "gate": self.gate,
         }
         if with_summary:
             out["dataset"] = self.dataset
@@ -225,7 +240,7 @@ def _row_to_run(row: sqlite3.Row) -> RunRecord:
         model_spec=row["model_spec"], dataset_root=row["dataset_root"], dataset_hash=row["dataset_hash"],
         method=row["method"], settings=load(row["settings"]) or {}, tool_version=row["tool_version"],
         command=row["command"], total=row["total"], done=row["done"], owner=load(row["owner"]),
-        dataset=load(row["dataset"]), summary=load(row["summary"]), error=row["error"],
+        dataset=load(row["dataset"]), summary=load(row["summary"]), error=row["error"], gate=load(row["gate"]),
     )
 
 
@@ -308,11 +323,28 @@ class Store:
             row = self._db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
             if row is None:
                 self._db.execute("INSERT INTO meta (key, value) VALUES ('schema', ?)", (str(SCHEMA_VERSION),))
-            elif int(row["value"]) != SCHEMA_VERSION:
+            elif int(row["value"]) > SCHEMA_VERSION:
                 raise StoreError(
-                    f"the database in {str(self.root)!r} has schema version {row['value']}, this Pellucid "
-                    f"reads version {SCHEMA_VERSION}; use a matching Pellucid or another data folder"
+                    f"the database in {str(self.root)!r} has schema version {row['value']}, newer than the version "
+                    f"{SCHEMA_VERSION} this Pellucid reads; use a newer Pellucid or another data folder"
                 )
+            elif int(row["value"]) < SCHEMA_VERSION:
+                self._migrate(int(row["value"]))
+
+    def _migrate(self, version: int) -> None:
+        """Bring an older store up to :data:`SCHEMA_VERSION` in place (inside the opening transaction)."""
+        if version < 2:
+            columns = {r["name"] for r in self._db.execute("PRAGMA table_info(runs)").fetchall()}
+            if "gate" not in columns:
+                self._db.execute("ALTER TABLE runs ADD COLUMN gate TEXT")
+            # Version 1 dashboards kept the gate inside the summary: move it to its column.
+            for r in self._db.execute("SELECT id, summary FROM runs WHERE summary IS NOT NULL").fetchall():
+                summary = json.loads(r["summary"])
+                if isinstance(summary, dict) and isinstance(summary.get("gate"), dict):
+                    gate = summary.pop("gate")
+                    self._db.execute("UPDATE runs SET gate=?, summary=? WHERE id=?",
+                                     (json.dumps(gate, allow_nan=True), json.dumps(summary, allow_nan=True), r["id"]))
+        self._db.execute("UPDATE meta SET value=? WHERE key='schema'", (str(SCHEMA_VERSION),))
 
     def _clean_temporaries(self) -> None:
         for tmp in self.artefact_dir.glob("*/*.tmp-*"):
@@ -534,6 +566,17 @@ class Store:
                            (run_id, name, digest))
 
         self._write(save)
+
+    def set_gate(self, run_id: str, gate: dict | None) -> RunRecord:
+        """Store (or clear, with None) the gate result of a run: ``PolicyResult.to_dict()`` and when."""
+        text = json.dumps(gate, allow_nan=True) if gate is not None else None
+
+        def save(db: sqlite3.Connection) -> None:
+            if db.execute("UPDATE runs SET gate=?, updated=? WHERE id=?", (text, time.time(), run_id)).rowcount != 1:
+                raise NotFoundError(f"no audit run {run_id!r}")
+
+        self._write(save)
+        return self.get_run(run_id)
 
     def add_artefacts(self, run_id: str, artefacts: dict[str, str]) -> None:
         """Attach stored artefacts to a run under names (replacing a name already there)."""

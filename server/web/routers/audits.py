@@ -29,9 +29,10 @@ from pellucid import __version__
 from pellucid.core.audit import CAUTION, AuditSettings, GallerySpec, InjectionSpec, crop_patch, load_dataset, run_audit
 from pellucid.core.audit.compare import compare_runs
 from pellucid.core.audit.dataset import Dataset
-from pellucid.core.audit.policy import Policy, evaluate_policy, load_policy
+from pellucid.core.audit.policy import Policy, evaluate_policy, failed_first, gate_of, gate_sentence, load_policy
 from pellucid.core.audit.preflight import check_audit_inputs
 from pellucid.core.audit.runner import stored_inputs
+from pellucid.core.audit.sentences import injection_sentence, unreadable_images
 from pellucid.core.audit.store import RESUMABLE, Store
 from pellucid.core.errors import BadParameterError, ConflictError, DataError, NotFoundError, PellucidError
 from pellucid.core.jobs import BACKGROUND
@@ -212,10 +213,11 @@ def _job_view(request: Request, ws: Workspace, job_id: str) -> dict:
 
 def _run_list_entry(run: Any, settings: Settings) -> dict:
     s = run.summary or {}
-    gate = s.get("gate")
+    gate = gate_of(run)
     return {**run.to_dict(with_summary=False), "accuracy": s.get("accuracy"),
             "flagged_count": s.get("flagged_count"), "class_flags": len(s.get("class_flags", [])),
             "gate": None if not gate else ("pass" if gate["passed"] else "fail"),
+            "gate_sentence": gate_sentence(gate) if gate else None,
             "resumable": run.status in RESUMABLE, "pictures": pictures_refusal(run, settings) is None}
 
 
@@ -248,10 +250,8 @@ def _launch(request: Request, ws: Workspace, store: Store, *, model_name: str, d
             gallery=gallery, progress=progress, cancel=cancel,
             on_phase=lambda name: live.update(phase=name), on_run=lambda run: live.update(run_id=run.id),
         )
-        if policy is not None:
-            summary = dict(outcome.summary)
-            summary["gate"] = evaluate_policy(policy, summary, labels=model.labels).to_dict()
-            store.set_summary(outcome.run.id, summary)
+        if policy is not None:  # the verdict is stored with the run (store.set_gate), as the CLI does
+            store.set_gate(outcome.run.id, evaluate_policy(policy, outcome.summary, labels=model.labels).to_dict())
         live["phase"] = "finished"
         return {"run_id": outcome.run.id}
 
@@ -353,6 +353,14 @@ def run_detail(run_id: str, store: Store = Depends(get_store), settings: Setting
     refusal = pictures_refusal(run, settings)
     out["pictures"] = refusal is None
     out["pictures_refusal"] = refusal
+    # The verdict stored with the run (failed checks first), the images it could not use, and the
+    # injection test's counts in one sentence: the page shows them as they are, for any model.
+    gate = gate_of(run)
+    out["gate"] = {**gate, "checks": failed_first(gate.get("checks") or []),
+                   "sentence": gate_sentence(gate)} if gate else None
+    out["unreadable"] = unreadable_images(run.dataset, run.summary)
+    inj = (run.summary or {}).get("injection")
+    out["injection_sentence"] = injection_sentence(inj) if inj else None
     return out
 
 

@@ -43,8 +43,9 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="class to explain, by index or label (default: the model's top-1)")
     p.add_argument("--no-occlusion", dest="occlusion", action="store_false",
                    help="skip the occlusion map (it is the slowest view)")
-    p.add_argument("--patch", type=int, default=None, help="occlusion patch side in px (default: input/8)")
-    p.add_argument("--stride", type=int, default=None, help="occlusion stride in px (default: patch/2)")
+    p.add_argument("--patch", type=int, default=None, help="occlusion patch side in px (default: an eighth of the "
+                   "input's shorter side)")
+    p.add_argument("--stride", type=int, default=None, help="occlusion stride in px (default: half the patch)")
     p.add_argument("--baseline", choices=("mean", "zero", "blur"), default="mean",
                    help="what fills the occluding patch (default: the image's mean colour)")
     p.add_argument("--engine", default="auto",
@@ -201,8 +202,9 @@ def _inspect(args: argparse.Namespace) -> int:
     computed: dict[str, Any] = {}
     if args.occlusion:
         h, w = model.spec.input.height, model.spec.input.width
-        patch = args.patch or max(2, min(h, w) // 8)
-        stride = args.stride or max(1, patch // 2)
+        from pellucid.core.occlusion.positions import default_occlusion_geometry
+
+        patch, stride = default_occlusion_geometry(h, w, patch=args.patch, stride=args.stride)
         t0 = time.perf_counter()
         occ = occlusion_map(model.module, x, target=explained, patch=patch, stride=stride, baseline=args.baseline,
                             output=model.output_kind, method=args.engine,

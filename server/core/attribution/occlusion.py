@@ -3,8 +3,10 @@
 Zeiler & Fergus, "Visualizing and Understanding Convolutional Networks", ECCV 2014, §4.2. The
 map is the drop in the target's score when a patch covering the pixel is hidden (signed:
 negative where hiding raises it). The score is the class probability (the spec's softmax or
-sigmoid) or, with ``output = "logit"``, the raw score before it. Patch 16, stride 8 and the
-image-mean fill are Pellucid's own defaults; the paper fixes none.
+sigmoid) or, with ``output = "logit"``, the raw score before it. The paper fixes no patch size,
+stride or fill; Pellucid's defaults are the image-mean fill and, unless given, the patch and stride
+of :func:`~pellucid.core.occlusion.positions.default_occlusion_geometry` (an eighth of the input's
+shorter side, stride half of it), reported with every map.
 
 Saturation. Near p = 1 (or 0) a probability hardly moves even when the raw score moves a lot
 (dp = p(1 − p)·dz for a softmax or sigmoid), so the probability map is nearly flat whatever
@@ -25,6 +27,7 @@ from pellucid.core.attribution.params import Param, ParamSchema
 from pellucid.core.attribution.registry import Context, Method, register
 from pellucid.core.attribution.result import MethodOutput
 from pellucid.core.errors import BadParameterError
+from pellucid.core.occlusion.positions import default_occlusion_geometry
 from pellucid.core.progress import CancelToken, ProgressFn
 
 __all__ = ["SATURATED_CHANGE", "SATURATED_P", "check_geometry", "saturation_warning"]
@@ -33,8 +36,10 @@ SATURATED_P = 0.99  # a probability this close to 1 (or to 0) barely moves
 SATURATED_CHANGE = 0.01  # ...and no patch moved it by more than this
 
 SCHEMA = ParamSchema((
-    Param("patch", "int", 16, "side of the hidden square in pixels", min=1, max=4096),
-    Param("stride", "int", 8, "step between patch positions in pixels", min=1, max=4096),
+    Param("patch", "int", None, "side of the hidden square in pixels; default: an eighth of the input's shorter "
+          "side", min=1, max=4096),
+    Param("stride", "int", None, "step between patch positions in pixels; default: half the patch", min=1,
+          max=4096),
     Param("baseline", "choice", "mean", "fill of the hidden square: the image's mean colour, zero in input "
           "space, or a blurred copy", choices=("mean", "zero", "blur")),
     Param("output", "choice", "probability", "the score whose drop is mapped: the class probability, or the raw "
@@ -49,6 +54,9 @@ SCHEMA = ParamSchema((
 def check_geometry(input_shape: tuple[int, int, int], params: dict[str, Any]) -> None:
     """Patch and stride must fit a (C, H, W) input, and the stride must not skip pixels."""
     _, h, w = input_shape
+    params = dict(params)
+    params["patch"], params["stride"] = default_occlusion_geometry(h, w, patch=params.get("patch"),
+                                                                   stride=params.get("stride"))
     for name in ("patch", "stride"):
         value = params.get(name)
         if isinstance(value, int) and value > min(h, w):
@@ -84,8 +92,9 @@ def _occlusion(
     from pellucid.core.occlusion.engine import occlusion_map  # lazily: keeps the registry importable on its own
 
     output = "logit" if params["output"] == "logit" else context.output_kind
+    patch, stride = default_occlusion_geometry(*x.shape[-2:], patch=params["patch"], stride=params["stride"])
     res = occlusion_map(
-        model, x, target=target, patch=params["patch"], stride=params["stride"],
+        model, x, target=target, patch=patch, stride=stride,
         baseline=params["baseline"], output=output, method=params["engine"],
         progress=progress, cancel=cancel,
     )
@@ -103,7 +112,7 @@ def _occlusion(
     return MethodOutput(
         map=np.asarray(res.drop, dtype=np.float32), signed=True,
         raw=np.asarray(res.grid, dtype=np.float32), n_forwards=int(res.n_forwards), n_backwards=0,
-        extras=extras,
+        extras=extras, resolved={"patch": patch, "stride": stride},
     )
 
 
@@ -116,7 +125,7 @@ def _positions(size: int, patch: int, stride: int) -> int:
 
 def _cost(params: dict[str, Any], size: tuple[int, int]) -> float:
     h, w = size
-    patch, stride = params["patch"], params["stride"]
+    patch, stride = default_occlusion_geometry(h, w, patch=params["patch"], stride=params["stride"])
     return float(1 + _positions(h, patch, stride) * _positions(w, patch, stride))
 
 

@@ -497,8 +497,8 @@ def _check_input_shape(input_shape: Any) -> tuple[int, int, int]:
 def _check_module(model: Any) -> None:
     if isinstance(model, torch.jit.ScriptModule):
         raise UnsupportedLayerError(
-            "Forward hooks are not supported on TorchScript modules, so the layer map (and every "
-            "per-layer view) is unavailable for this model. Export the model with torch.export "
+            "The layer map (and every per-layer view) is unavailable for TorchScript: needs forward hooks, which "
+            "torch does not support on TorchScript modules. Export the model with torch.export "
             "(torch.export.export(model, (example,)) then torch.export.save) and load the .pt2 archive instead."
         )
     if not isinstance(model, nn.Module):

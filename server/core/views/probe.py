@@ -27,8 +27,8 @@ def find_layer(model: nn.Module, name: str) -> nn.Module:
     """Return the submodule called ``name``; raise UnsupportedLayerError naming close matches."""
     if not hookable(model):
         raise UnsupportedLayerError(
-            "this model is a TorchScript archive: torch does not support forward hooks on loaded "
-            "ScriptModules, so layer views are unavailable. Export it with torch.export (kind = \"export\") "
+            "layer views are unavailable for TorchScript: needs forward hooks, which torch does not support on "
+            "loaded ScriptModules. Export the model with torch.export (kind = \"export\") "
             "to see its layers; top-k, occlusion and input-gradient methods still work."
         )
     modules = dict(model.named_modules())

@@ -74,6 +74,9 @@ _DEFAULT_BATCH_PIXELS = 16 * 224 * 224
 # On grids too small to race (fewer than three incremental batches), method="auto" takes the
 # incremental engine when its estimated MAC saving is at least this.
 WORTHWHILE_SPEEDUP_SMALL_GRID = 1.5
+# Grid positions on which method="auto" checks the incremental engine against brute force
+# (corners, centre, evenly spaced); "incremental" checks three.
+CHECK_POSITIONS = 16
 
 
 @dataclass
@@ -485,7 +488,7 @@ def _choose_engine(
     inc_bs = batch_size or engine.default_batch(rows, cols)
 
     # self-check on grid positions: brute force is the reference, its logits are kept
-    check = _check_positions(rows, cols, batched_bs if method == "auto" else 3)
+    check = _check_positions(rows, cols, CHECK_POSITIONS if method == "auto" else 3)
     sel = torch.as_tensor(check)
     ref = batched(ty[sel], tx[sel])
     try:
@@ -505,7 +508,7 @@ def _choose_engine(
 
     # the race: one batch of whole middle rows for incremental, one warm batched batch
     pending = _row_batches(rows, cols, inc_bs, set(known))
-    if len(pending) < 3:  # a small grid: the estimate decides, racing would cost more than it tells
+    if n - len(known) < 2 * (inc_bs + batched_bs):  # a small grid: the estimate decides
         if engine.estimated_speedup >= WORTHWHILE_SPEEDUP_SMALL_GRID:
             return choice
         return _Choice("batched", batched, batched_bs, {

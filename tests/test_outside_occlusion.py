@@ -107,6 +107,17 @@ def occlusion_by_hand(model: nn.Module, x: torch.Tensor, *, target: int, patch: 
     return grid, total / count, tops, lefts
 
 
+_REFERENCES: dict[tuple, tuple] = {}
+
+
+def reference_for(model: nn.Module, x: torch.Tensor, **kw) -> tuple:
+    """The loop's result, computed once per model, input and settings for the engines that share it."""
+    key = (id(model), x.numpy().tobytes(), tuple(sorted(kw.items())))
+    if key not in _REFERENCES:
+        _REFERENCES[key] = occlusion_by_hand(model, x, **kw)
+    return _REFERENCES[key]
+
+
 def assert_close(ours: np.ndarray, reference: np.ndarray, what: str) -> None:
     assert ours.shape == reference.shape, f"{what}: shape {ours.shape} against {reference.shape}"
     scale = max(float(np.ptp(reference)), 1e-2)
@@ -173,8 +184,8 @@ def tile_input(tilenet):
 def test_resnet18_engines_equal_the_loop(resnet18, resnet_input, engine, patch, stride, baseline, output):
     x = resnet_input
     target = 3
-    grid, drop, tops, lefts = occlusion_by_hand(resnet18, x, target=target, patch=patch, stride=stride,
-                                                baseline=baseline, output=output)
+    grid, drop, tops, lefts = reference_for(resnet18, x, target=target, patch=patch, stride=stride,
+                                            baseline=baseline, output=output)
     assert np.ptp(grid) > 1e-3, "the reference map is flat, so the comparison would mean nothing"
     res = occlusion_map(resnet18, x, target=target, patch=patch, stride=stride, baseline=baseline,
                         output=output, method=engine)
@@ -191,8 +202,8 @@ def test_resnet18_engines_equal_the_loop(resnet18, resnet_input, engine, patch, 
 @pytest.mark.parametrize("engine", EXACT_ENGINES)
 def test_demo_model_engines_equal_the_loop(tilenet, tile_input, engine):
     x = tile_input
-    grid, drop, _, _ = occlusion_by_hand(tilenet.module, x, target=1, patch=16, stride=7, baseline="mean",
-                                         output="softmax")
+    grid, drop, _, _ = reference_for(tilenet.module, x, target=1, patch=16, stride=7, baseline="mean",
+                                     output="softmax")
     assert grid.shape == (13, 11)
     assert np.ptp(grid) > 0.05, "a real tile moves the class probability"
     res = occlusion_map(tilenet.module, x, target=1, patch=16, stride=7, baseline="mean", output="softmax",
@@ -213,8 +224,8 @@ def test_registry_occlusion_equals_the_loop(tilenet, tile_input):
 
 def test_transposed_grid_fails_the_comparison(resnet18, resnet_input):
     # The check above must be able to fail: the loop's grid transposed is not accepted.
-    grid, _, _, _ = occlusion_by_hand(resnet18, resnet_input, target=3, patch=8, stride=5, baseline="mean",
-                                      output="logit")
+    grid, _, _, _ = reference_for(resnet18, resnet_input, target=3, patch=8, stride=5, baseline="mean",
+                                  output="logit")
     with pytest.raises(AssertionError):
         assert_close(grid.T, grid, "transposed")
     square = grid[:7, :7]
@@ -242,8 +253,8 @@ def test_approximate_is_bounded_against_the_loop(tilenet, sample, settings):
     x = prepare(tilenet.spec, read_image(tile)).tensor
     with torch.no_grad():
         target = int(tilenet.module(x).argmax())
-    grid, drop, _, _ = occlusion_by_hand(tilenet.module, x, target=target, patch=12, stride=4, baseline="mean",
-                                         output="softmax")
+    grid, drop, _, _ = reference_for(tilenet.module, x, target=target, patch=12, stride=4, baseline="mean",
+                                     output="softmax")
     res = occlusion_map(tilenet.module, x, target=target, patch=12, stride=4, baseline="mean", output="softmax",
                         method="approximate", **settings)
     assert res.approximate and res.engine == "approximate"

@@ -160,7 +160,7 @@ def test_inspect_pictures_are_enlarged_by_pixel_repetition_and_say_how(tmp_path,
     weights = dict(load_model(spec).module.named_parameters())[f"{kernels['layer']}.weight"].detach()
     expected = [float(weights[f].abs().max()) for f in kernels["filters"]]
     assert np.allclose(kernels["scales"], expected, rtol=1e-6)
-    assert result["provenance"]["torch"] == torch.__version__.split("+")[0]
+    assert result["provenance"]["torch"].split("+")[0] == torch.__version__.split("+")[0]
 
 
 def _audit_folder(tmp_path: Path) -> Path:
@@ -199,3 +199,20 @@ def test_audit_without_a_terminal_prints_plain_progress_lines_and_quiet_prints_n
     assert all("Traceback" not in ln for ln in lines)
     quiet = _audit(tmp_path, "--quiet", "--fresh")
     assert quiet.returncode == 0 and "/6" not in quiet.stderr
+
+    # The run records where it ran; `runs show` and the report say so.
+    summary = json.loads((tmp_path / "out" / "summary.json").read_text())
+    assert summary["provenance"]["torch"].split("+")[0] == torch.__version__.split("+")[0]
+    assert summary["summary"]["provenance"]["python"] == ".".join(map(str, sys.version_info[:3]))
+    run_id = summary["run"]["id"]
+    env = {"PYTHONPATH": str(REPO), "PATH": "/usr/bin:/bin"}
+    store = str(tmp_path / "store")
+    show = subprocess.run([sys.executable, "-m", "pellucid", "runs", "show", run_id, "--store", store],
+                          cwd=tmp_path, capture_output=True, text=True, timeout=120, env=env)
+    assert show.returncode == 0 and f"torch {torch.__version__.split('+')[0]}" in show.stdout
+    report = subprocess.run([sys.executable, "-m", "pellucid", "report", run_id, "--store", str(tmp_path / "store"),
+                             "--out", str(tmp_path / "report"), "--no-pdf"],
+                            cwd=tmp_path, capture_output=True, text=True, timeout=300, env=env)
+    assert report.returncode == 0, report.stderr
+    html = (tmp_path / "report" / "report.html").read_text(encoding="utf-8")
+    assert f"Python {'.'.join(map(str, sys.version_info[:3]))}" in html

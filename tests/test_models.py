@@ -357,3 +357,19 @@ def test_torchscript_refuses_hook_methods_up_front_and_runs_the_others(tmp_path)
             call()
     amap = compute_attribution("saliency", m.module, torch.randn(1, 3, 16, 16))
     assert np.abs(amap.map).sum() > 0
+
+
+def test_server_refuses_a_nan_model_with_the_same_sentence(tmp_path):
+    from fastapi.testclient import TestClient
+
+    from pellucid.web.app import create_app
+    from pellucid.web.settings import Settings
+
+    spec = spec_file(tmp_path, f'kind = "factory"\nfactory = "{__name__}:build_nan"')
+    with pytest.raises(ModelLoadError) as info:
+        load_model(spec)
+    settings = Settings(models=(str(spec),), include_bundled=False, data_dir=tmp_path / "data")
+    with TestClient(create_app(settings)) as client:
+        r = client.get("/api/models/t")
+    assert r.status_code == 422
+    assert r.json()["detail"] == str(info.value)

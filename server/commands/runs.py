@@ -89,6 +89,10 @@ def _show(args: argparse.Namespace) -> int:
     print(f"dataset {run.dataset_root} (hash {run.dataset_hash})")
     print(f"method {run.method}, settings {json.dumps(run.settings['audit'], sort_keys=True)}")
     print(f"tool version {run.tool_version}; re-run with: {run.command or '(not recorded)'}")
+    if s.get("provenance"):
+        from pellucid.core.provenance import provenance_line
+
+        print(f"environment: {provenance_line(s['provenance'])}")
     if run.error:
         print(f"error: {run.error}")
     _print_gate(run)

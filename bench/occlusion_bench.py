@@ -159,13 +159,21 @@ def build_model(name: str) -> tuple[nn.Module, str]:
             model.load_state_dict(load_file(str(weights)))
             return model.eval(), "demo TileNet, trained weights"
         return _random_bn(model, 1), "demo TileNet architecture, random weights (trained weights not found)"
+    if name == "efficientnet-lite0":
+        from pellucid.core.model.bundled import bundled_spec_path
+        from pellucid.core.model.loading import load_model
+
+        return load_model(bundled_spec_path(name)).module.eval(), "bundled EfficientNet-Lite0, ImageNet weights"
     import torchvision
 
-    if name == "resnet18":
-        return _random_bn(torchvision.models.resnet18(), 2), "torchvision ResNet-18, random weights"
+    seeded = {"resnet18": 2, "resnet50": 3, "mobilenet_v3_small": 4, "mobilenet_v3_large": 5}
+    if name in seeded:
+        model = getattr(torchvision.models, name)()
+        return _random_bn(model, seeded[name]), f"torchvision {name}, random weights (seed 0, BN seed {seeded[name]})"
     if name == "vgg16":
         return torchvision.models.vgg16().eval(), "torchvision VGG-16, random weights"
-    raise SystemExit(f"unknown model {name!r}; choose from tilenet, resnet18, vgg16")
+    raise SystemExit(f"unknown model {name!r}; choose from tilenet, efficientnet-lite0, resnet18, resnet50, "
+                     "mobilenet_v3_small, mobilenet_v3_large, vgg16")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -215,8 +223,28 @@ def tune_batched(x224: torch.Tensor, reps: int, thread_options: list[int]) -> tu
 # one case
 
 
+def photo_input(name: str, photo: str = "chelsea") -> tuple[torch.Tensor, str]:
+    """One of scikit-image's bundled photos through the bundled model's own spec (resize, crop, mean/std)."""
+    import io
+
+    from PIL import Image
+    from skimage import data
+
+    from pellucid.core.model.bundled import bundled_spec_path
+    from pellucid.core.model.loading import load_model
+    from pellucid.core.model.preprocess import prepare, read_image
+
+    buf = io.BytesIO()
+    Image.fromarray(getattr(data, photo)()).convert("RGB").save(buf, format="PNG")
+    spec = load_model(bundled_spec_path(name)).spec
+    return prepare(spec, read_image(buf.getvalue())).tensor, f"scikit-image {photo}.png through the spec"
+
+
 def bench_input(name: str, size: int, seed: int) -> tuple[torch.Tensor, str]:
-    """The demo model sees a real demo tile (a tagged sound tile, resized); others see noise."""
+    """The demo model sees a real demo tile (a tagged sound tile, resized), the bundled ImageNet
+    model a real photo; random-weight models see noise."""
+    if name == "efficientnet-lite0" and size == 224:
+        return photo_input(name)
     tile = REPO / "demo_models" / "tilenet" / "samples" / "sound_tagged_01.png"
     if name == "tilenet" and tile.exists():
         from PIL import Image
@@ -262,7 +290,8 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
 
     # position subsets: batched runs a few full batches (same cost at every position), naive a few
     # positions, incremental the first, last and evenly spaced interior rows (border rows are cheaper)
-    _, batched_eval, _, _ = _choose_engine(model, x, base, patch, "batched", batch, (nr, nc))
+    batched_eval = _choose_engine(model, x, base, patch, "batched", batch, (nr, nc), torch.empty(0),
+                                  torch.empty(0)).evaluate
     if full_grid:
         bt, bl = grid_positions(list(range(nr)))
         rows = list(range(nr))
@@ -309,8 +338,12 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
     t_b: list[float] = []
     t_i: list[float] = []
     t_n: list[float] = []
-    rss = {"batched": [0, 0], "incremental": [0, 0], "naive": [0, 0]}
+    t_auto: list[float] = []
+    t_a: list[float] = []
+    rss = {k: [0, 0] for k in ("batched", "incremental", "naive", "auto", "approximate")}
     logits_b = logits_i = logits_n = None
+    auto = approx = None
+    do_approx = args.approximate and n <= args.approx_max_positions
     for _ in range(args.reps):
         with PeakRSS() as r1:
             t0 = time.perf_counter()
@@ -323,7 +356,20 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
             t0 = time.perf_counter()
             logits_n = naive_loop(model, x, base, npos, patch)
             t_n.append((time.perf_counter() - t0) * n / k)
-        for key, r in (("batched", r1), ("incremental", r2), ("naive", r3)):
+        measured = [("batched", r1), ("incremental", r2), ("naive", r3)]
+        if args.auto:
+            with PeakRSS() as r4:
+                t0 = time.perf_counter()
+                auto = occlusion_map(model, x, target=target, patch=patch, stride=stride, method="auto")
+                t_auto.append(time.perf_counter() - t0)
+            measured.append(("auto", r4))
+        if do_approx:
+            with PeakRSS() as r5:
+                t0 = time.perf_counter()
+                approx = occlusion_map(model, x, target=target, patch=patch, stride=stride, method="approximate")
+                t_a.append(time.perf_counter() - t0)
+            measured.append(("approximate", r5))
+        for key, r in measured:
             rss[key] = [max(rss[key][0], r.peak), max(rss[key][1], r.growth)]
     ratio_bi = statistics.median(b / i for b, i in zip(t_b, t_i))
     ratio_nb = statistics.median(nv / b for nv, b in zip(t_n, t_b))
@@ -349,44 +395,36 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
                                       "peak_rss": rss["incremental"][0], "rss_growth": rss["incremental"][1],
                                       "batch": inc_batch, "extrapolated": not full_grid, "max_abs_diff": diff_i,
                                       "compared_positions": len(ct), "speedup_per_round": ratio_bi}
-    for meth in ("batched", "incremental", "naive"):
+    ri = {int(t): i for i, t in enumerate(tops)}
+    ci = {int(v): j for j, v in enumerate(lefts)}
+    if auto is not None:
+        got = np.array([auto.grid[ri[int(t)], ci[int(v)]] for t, v in zip(bt, bl)], dtype=np.float64)
+        case["methods"]["auto"] = {
+            "seconds": statistics.median(t_auto), "times": t_auto, "extrapolated": False,
+            "peak_rss": rss["auto"][0], "rss_growth": rss["auto"][1], "engine": auto.engine,
+            "max_abs_diff": float(np.abs(got - (auto.base_score - scores_b.numpy())).max()),
+            "compared_positions": len(bt), "speedup_per_round": statistics.median(b / a for b, a in zip(t_b, t_auto)),
+            "details": {k_: v for k_, v in auto.details.items() if k_ != "sampled_error"},
+        }
+    if approx is not None and auto is not None:
+        from scipy.stats import spearmanr
+
+        err = compare_to_exact(approx, model, x, exact=auto)
+        ex_g, ap_g = auto.grid.astype(np.float64), approx.grid.astype(np.float64)
+        kk = max(1, round(0.1 * ex_g.size))
+        top_overlap = len(set(np.argsort(-ex_g, axis=None)[:kk]) & set(np.argsort(-ap_g, axis=None)[:kk])) / kk
+        case["methods"]["approximate"] = {
+            "seconds": statistics.median(t_a), "times": t_a, "peak_rss": rss["approximate"][0],
+            "rss_growth": rss["approximate"][1], "extrapolated": False, "max_abs_diff": err["grid_max_abs"],
+            "mean_abs_diff": err["grid_mean_abs"], "evaluated_fraction": err["evaluated_fraction"],
+            "spearman": float(spearmanr(ap_g.ravel(), ex_g.ravel()).statistic), "top10_overlap": top_overlap,
+            "sampled_error": approx.details.get("sampled_error"), "exact_engine": approx.details.get("exact_engine"),
+            "speedup_over_auto_per_round": statistics.median(e_ / a_ for e_, a_ in zip(t_auto, t_a)),
+            "speedup_per_round": statistics.median(b / a_ for b, a_ in zip(t_b, t_a)),
+        }
+    for meth in case["methods"]:
         print(f"{meth:12s} {case['methods'][meth]['seconds']:9.2f} s", flush=True)
     print(f"incremental vs batched per round (median): {ratio_bi:.2f}×; max|diff| {diff_i:.1e}", flush=True)
-
-    # approximate: needs the whole grid and the exact map for its error; the whole-grid
-    # incremental run next to it is that exact map
-    if n <= args.approx_max_positions:
-        t_w: list[float] = []
-        t_a: list[float] = []
-        exact = approx = None
-        peak_a = [0, 0]
-        for _ in range(args.reps if full_grid else 1):
-            t0 = time.perf_counter()
-            exact = occlusion_map(model, x, target=target, patch=patch, stride=stride, method="incremental")
-            t_w.append(time.perf_counter() - t0)
-            with PeakRSS() as ra:
-                t0 = time.perf_counter()
-                approx = occlusion_map(model, x, target=target, patch=patch, stride=stride, method="approximate",
-                                       refine_tolerance=args.refine_tolerance)
-                t_a.append(time.perf_counter() - t0)
-            peak_a = [max(peak_a[0], ra.peak), max(peak_a[1], ra.growth)]
-        err = compare_to_exact(approx, model, x, exact=exact)
-        ri = {int(t): i for i, t in enumerate(tops)}
-        ci = {int(v): j for j, v in enumerate(lefts)}
-        got = np.array([exact.grid[ri[int(t)], ci[int(v)]] for t, v in zip(bt, bl)], dtype=np.float64)
-        diff_w = float(np.abs(got - (exact.base_score - scores_b.numpy())).max())
-        case["methods"]["approximate"] = {
-            "seconds": statistics.median(t_a), "times": t_a, "peak_rss": peak_a[0], "rss_growth": peak_a[1],
-            "extrapolated": False, "max_abs_diff": err["grid_max_abs"], "mean_abs_diff": err["grid_mean_abs"],
-            "evaluated_fraction": err["evaluated_fraction"], "refine_tolerance": args.refine_tolerance,
-            "exact_engine": approx.details.get("exact_engine"),
-            "whole_grid_incremental_seconds": statistics.median(t_w),
-        }
-        case["incremental_whole_grid"] = {"seconds": statistics.median(t_w), "times": t_w,
-                                          "max_abs_diff_vs_batched": diff_w, "compared_positions": len(bt)}
-        print(f"approximate  {statistics.median(t_a):9.2f} s  ({err['evaluated_fraction']:.0%} evaluated, max|err| "
-              f"{err['grid_max_abs']:.1e}); whole-grid incremental next to it {statistics.median(t_w):.2f} s, "
-              f"max|diff| to batched {diff_w:.1e}", flush=True)
 
     sec_n = case["methods"]["naive"]["seconds"]
     sec_b = case["methods"]["batched"]["seconds"]
@@ -396,7 +434,9 @@ def run_case(model: nn.Module, desc: str, name: str, size: int, patch: int, stri
         m["equiv_gflops"] = 2 * macs * n / m["seconds"] / 1e9
         m["ceiling_fraction"] = m["equiv_gflops"] / ceiling
     # ratios measured within one round are steadier than ratios of medians on a drifting machine
-    case["methods"]["incremental"]["vs_batched"] = case["methods"]["incremental"]["speedup_per_round"]
+    for meth in ("incremental", "auto", "approximate"):
+        if meth in case["methods"]:
+            case["methods"][meth]["vs_batched"] = case["methods"][meth]["speedup_per_round"]
     return case
 
 
@@ -428,14 +468,24 @@ def markdown(report: dict[str, Any]) -> str:
                "equiv. GFLOP/s | % ceiling | max abs diff | peak RSS MB (growth) | how measured |"),
               "|---|---:|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---|"]
     for c in report["cases"]:
-        for meth in ("naive", "batched", "incremental", "approximate"):
+        for meth in ("naive", "batched", "incremental", "auto", "approximate"):
             r = c["methods"].get(meth)
             if r is None:
                 continue
             if meth == "approximate":
-                how = (f"whole grid; {r['evaluated_fraction']:.0%} of positions evaluated, mean abs err "
-                       f"{r['mean_abs_diff']:.1e} vs exact; whole-grid incremental run next to it "
-                       f"{r['whole_grid_incremental_seconds']:.2f} s")
+                how = (f"whole grid, {len(r['times'])} run(s); {r['evaluated_fraction']:.0%} of positions evaluated, "
+                       f"Spearman {r['spearman']:.3f} and top-10% overlap {r['top10_overlap']:.0%} against the exact "
+                       f"'auto' grid; {r['speedup_over_auto_per_round']:.2f}× faster than 'auto' per round")
+            elif meth == "auto":
+                race = r["details"].get("race_ms_per_position")
+                how = (f"occlusion_map(method='auto') on the whole grid, {len(r['times'])} run(s), setup, self-check "
+                       f"and race included; ran {r['engine']}")
+                if race:
+                    how += (f" (race: incremental {race['incremental']:.1f} ms, batched {race['batched']:.1f} ms per "
+                            "position)")
+                elif r["details"].get("incremental_skipped"):
+                    how += f" ({r['details']['incremental_skipped']})"
+                how += f"; diff at {r['compared_positions']} batched positions"
             elif r["extrapolated"]:
                 how = f"{r['measured_positions']} of {c['n_positions']} positions, extrapolated"
                 if meth == "incremental":
@@ -443,23 +493,34 @@ def markdown(report: dict[str, Any]) -> str:
                            "setup; diff on 2 rows")
             else:
                 how = f"whole grid, {len(r['times'])} run(s)"
-            if meth == "incremental":
+            if meth in ("incremental", "auto", "approximate"):
                 how += f"; per-round speedup over batched {r['speedup_per_round']:.2f}×"
             how += f"; ceiling {c['ceiling']['gflops']:.1f}"
-            ideal = f"{c['ideal_speedup']:.2f}" if meth == "incremental" else ""
+            ideal = f"{c['ideal_speedup']:.2f}" if meth in ("incremental", "auto") else ""
             diff = "reference" if meth == "batched" else f"{r['max_abs_diff']:.1e}"
             lines.append(
                 f"| {c['model']} {c['size']}² | {c['stride']} | {c['n_positions']} | {meth} | {r['seconds']:.2f} | "
                 f"{r['vs_naive']:.1f} | {r['vs_batched']:.2f} | {ideal} | {r['equiv_gflops']:.1f} | "
                 f"{r['ceiling_fraction']:.0%} | {diff} | {r['peak_rss'] / 2**20:.0f} "
                 f"(+{r['rss_growth'] / 2**20:.0f}) | {how} |")
-    lines += ["", "Whole-grid incremental runs (the exact reference of the approximate rows), against batched at the "
-              "positions batched ran:", ""]
+    lines += ["", "Summary (speedups over batched are medians of per-round ratios):", "",
+              ("| model | stride | ideal × | incremental × | auto × (engine) | approximate × batched | × exact auto | "
+               "evaluated | Spearman | top-10% overlap | sampled error (max abs, n) |"),
+              "|---|---:|---:|---:|---|---:|---:|---:|---:|---:|---|"]
     for c in report["cases"]:
-        w = c.get("incremental_whole_grid")
-        if w:
-            lines.append(f"- {c['model']} {c['size']}² stride {c['stride']}: {w['seconds']:.2f} s, max abs diff "
-                         f"{w['max_abs_diff_vs_batched']:.1e} at {w['compared_positions']} positions.")
+        m = c["methods"]
+        au, ap = m.get("auto"), m.get("approximate")
+        cells = [f"{c['model']} {c['size']}²", str(c["stride"]), f"{c['ideal_speedup']:.2f}",
+                 f"{m['incremental']['speedup_per_round']:.2f}",
+                 f"{au['speedup_per_round']:.2f} ({au['engine']})" if au else ""]
+        if ap:
+            se = ap.get("sampled_error") or {}
+            cells += [f"{ap['speedup_per_round']:.2f}", f"{ap['speedup_over_auto_per_round']:.2f}",
+                      f"{ap['evaluated_fraction']:.0%}", f"{ap['spearman']:.3f}", f"{ap['top10_overlap']:.0%}",
+                      f"{se.get('max_abs', 0):.1e}, {se.get('positions', 0)}" if se.get("positions") else "none"]
+        else:
+            cells += [""] * 6
+        lines.append("| " + " | ".join(cells) + " |")
     lines += ["", "Models and inputs:", ""]
     seen = set()
     for c in report["cases"]:
@@ -473,10 +534,12 @@ def markdown(report: dict[str, Any]) -> str:
 def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(prog="python -m bench.occlusion_bench",
                                 description="Time occlusion engines against a naive loop and the mm ceiling.")
-    p.add_argument("--models", nargs="+", default=["tilenet", "resnet18", "vgg16"])
+    p.add_argument("--models", nargs="+",
+                   default=["tilenet", "efficientnet-lite0", "mobilenet_v3_small", "mobilenet_v3_large", "resnet50"],
+                   help="also: resnet18, vgg16")
     p.add_argument("--size", type=int, default=224)
     p.add_argument("--patch", type=int, default=16)
-    p.add_argument("--strides", nargs="+", type=int, default=[8, 4])
+    p.add_argument("--strides", nargs="+", type=int, default=[8])
     p.add_argument("--reps", type=int, default=3, help="repetitions per timing (median reported)")
     p.add_argument("--threads", nargs="+", type=int, default=None,
                    help="intra-op thread counts to try in the tuning sweep (default: 1 and all cores)")
@@ -485,11 +548,14 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--batched-batches", type=int, default=4, help="batches timed when not running the whole grid")
     p.add_argument("--interior-rows", type=int, default=2, help="interior rows timed for incremental")
     p.add_argument("--full", action="store_true", help="time every method on the whole grid (slow)")
-    p.add_argument("--full-below-gmac", type=float, default=400.0,
+    p.add_argument("--no-auto", dest="auto", action="store_false",
+                   help="skip the whole-grid occlusion_map(method='auto') run in each round")
+    p.add_argument("--no-approximate", dest="approximate", action="store_false",
+                   help="skip the whole-grid approximate run in each round")
+    p.add_argument("--full-below-gmac", type=float, default=60.0,
                    help="run the whole grid when positions × MACs is below this many GMAC")
     p.add_argument("--approx-max-positions", type=int, default=1000,
                    help="grids up to this size also run incremental (once) and approximate on the whole grid")
-    p.add_argument("--refine-tolerance", type=float, default=0.05)
     p.add_argument("--no-demo-native", dest="demo_native", action="store_false",
                    help="skip the demo model at its own 96×96 input size")
     p.add_argument("--out", type=Path, default=REPO / "bench" / "results")

@@ -166,11 +166,14 @@ def _inspect(args: argparse.Namespace) -> int:
             grid = rgb_grid(view, zoom=None)
         except UnsupportedLayerError:
             grid = channel_grid(view, zoom=None)
-        save("kernels.png", render.encode_png(grid.image))
+        k_factor = max(1, math.ceil(READABLE_SIDE / max(grid.image.shape[:2])))
+        k_image = render.upscale_nearest(grid.image, k_factor)
+        save("kernels.png", render.encode_png(k_image))
         result["kernels"] = view.to_dict()
         pictures["kernels.png"] = {
-            "size": [int(grid.image.shape[0]), int(grid.image.shape[1])], "layer": first.name,
-            "resampling": f"nearest neighbour, each weight drawn as {grid.zoom}×{grid.zoom} px",
+            "size": [int(k_image.shape[0]), int(k_image.shape[1])], "layer": first.name, "enlarged": k_factor,
+            "resampling": f"nearest neighbour, each weight drawn as {grid.zoom * k_factor}×{grid.zoom * k_factor} px "
+                          f"(cells and gaps below are before the ×{k_factor} enlargement)",
             "scaling": ("each tile scaled to its own largest |weight|: 128 + 127·w / max|w|, so 0 is mid-grey; "
                         "the scales are the max|w| of each tile, in tile order") if grid.scales is not None else
                        ("one diverging scale shared by every tile, symmetric around 0, over value_range"),

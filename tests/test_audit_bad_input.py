@@ -71,7 +71,7 @@ def test_cli_refuses_with_one_line_and_stores_nothing(case, folders, tiny_spec, 
     extra, data, words = CASES[case]
     extra = [a.format(big=folders["big"], small=folders["small"]) for a in extra]
     store = tmp_path / "store"
-    code = main(["audit", "--model", str(tiny_spec), "--data", str(folders[data]), "--out", str(tmp_path / "out"),
+    code = main(["audit", "--model", str(tiny_spec), "--images", str(folders[data]), "--out", str(tmp_path / "out"),
                  "--store", str(store), *extra])
     err = capsys.readouterr().err.strip()
     assert code == 2, err

@@ -33,25 +33,25 @@ def test_bad_input_gets_one_line(setup, tmp_path: Path, capsys: pytest.CaptureFi
     spec, data = setup
     base = ["audit", "--model", str(spec), "--out", str(tmp_path / "out"), "--store", str(tmp_path / "s")]
     (tmp_path / "empty").mkdir()
-    assert "nothing to audit" in _bad([*base, "--data", str(tmp_path / "empty")], capsys)
+    assert "nothing to audit" in _bad([*base, "--images", str(tmp_path / "empty")], capsys)
     (tmp_path / "m.csv").write_text("file,class\nx.png,crack\n")
-    assert "'path' and 'label'" in _bad([*base, "--data", str(tmp_path / "m.csv")], capsys)
+    assert "'path' and 'label'" in _bad([*base, "--images", str(tmp_path / "m.csv")], capsys)
     (tmp_path / "p.toml").write_text("[thresholds]\nmin_acuracy = 0.5\n")
-    assert "Did you mean 'min_accuracy'" in _bad([*base, "--data", str(data), "--policy", str(tmp_path / "p.toml")],
+    assert "Did you mean 'min_accuracy'" in _bad([*base, "--images", str(data), "--policy", str(tmp_path / "p.toml")],
                                                 capsys)
     (tmp_path / "q.toml").write_text("[thresholds\n")
-    assert "not valid TOML" in _bad([*base, "--data", str(data), "--policy", str(tmp_path / "q.toml")], capsys)
-    assert "unknown attribution method 'nope'" in _bad([*base, "--data", str(data), "--method", "nope"], capsys)
-    assert "stride" in _bad([*base, "--data", str(data), "--method", "occlusion", "--param", "stride=-3"], capsys)
-    assert "--inject-at" in _bad([*base, "--data", str(data), "--inject-class", "crack", "--inject-patch",
+    assert "not valid TOML" in _bad([*base, "--images", str(data), "--policy", str(tmp_path / "q.toml")], capsys)
+    assert "unknown attribution method 'nope'" in _bad([*base, "--images", str(data), "--method", "nope"], capsys)
+    assert "stride" in _bad([*base, "--images", str(data), "--method", "occlusion", "--param", "stride=-3"], capsys)
+    assert "--inject-at" in _bad([*base, "--images", str(data), "--inject-class", "crack", "--inject-patch",
                                   str(spec)], capsys)
-    bad_store = ["audit", "--model", str(spec), "--out", str(tmp_path / "out"), "--data", str(data)]
+    bad_store = ["audit", "--model", str(spec), "--out", str(tmp_path / "out"), "--images", str(data)]
     assert "data folder" in _bad([*bad_store, "--store", "/proc/self"], capsys)
     labels = tmp_path / "odd"
     write_folder(make_split("clean", per_class=1, seed=1), labels)
     (labels / "manifest.csv").unlink()
     (labels / "sound").rename(labels / "fine")
-    assert "label(s) 'fine'" in _bad([*base, "--data", str(labels)], capsys)
+    assert "label(s) 'fine'" in _bad([*base, "--images", str(labels)], capsys)
 
 
 def test_unreadable_images_are_listed_not_fatal(setup, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -60,7 +60,7 @@ def test_unreadable_images_are_listed_not_fatal(setup, tmp_path: Path, capsys: p
     write_folder(make_split("clean", per_class=2, seed=1), data)  # at least two images per class
     (data / "manifest.csv").unlink()
     (data / "crack" / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n truncated")
-    rc = main(["audit", "--model", str(spec), "--data", str(data), "--out", str(tmp_path / "out"),
+    rc = main(["audit", "--model", str(spec), "--images", str(data), "--out", str(tmp_path / "out"),
                "--store", str(tmp_path / "s")])
     captured = capsys.readouterr()
     assert rc == 0
@@ -73,7 +73,7 @@ def test_unreadable_images_are_listed_not_fatal(setup, tmp_path: Path, capsys: p
 def test_runs_and_report(setup, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     spec, data = setup
     store = str(tmp_path / "s")
-    common = ["audit", "--model", str(spec), "--data", str(data), "--store", store]
+    common = ["audit", "--model", str(spec), "--images", str(data), "--store", store]
     assert main([*common, "--out", str(tmp_path / "a")]) == 0
     assert main([*common, "--out", str(tmp_path / "b"), "--method", "occlusion", "--param", "stride=16"]) == 0
     capsys.readouterr()

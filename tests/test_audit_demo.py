@@ -90,7 +90,7 @@ def test_gate(name: str, code: int, clean_folder, tmp_path: Path, capsys: pytest
 
     folder, _ = clean_folder
     spec = _spec(name)
-    rc = main(["audit", "--model", str(spec), "--data", str(folder), "--policy", str(POLICY),
+    rc = main(["audit", "--model", str(spec), "--images", str(folder), "--policy", str(POLICY),
                "--out", str(tmp_path / "out"), "--store", str(tmp_path / "store")])
     out = capsys.readouterr().out
     assert rc == code, out

@@ -121,7 +121,7 @@ def test_sigkill_mid_run_then_resume(tmp_path: Path, capsys: pytest.CaptureFixtu
 
     spec = _tiny_model(tmp_path / "model")
     write_folder(make_split("clean", per_class=8, seed=4), tmp_path / "data")
-    args = ["audit", "--model", str(spec), "--data", str(tmp_path / "data"), "--method", "occlusion",
+    args = ["audit", "--model", str(spec), "--images", str(tmp_path / "data"), "--method", "occlusion",
             "--param", "patch=8", "--param", "stride=4", "--shard-size", "2"]
     store_dir = tmp_path / "store"
     env = {**os.environ, "PYTHONPATH": str(REPO)}

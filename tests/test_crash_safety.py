@@ -47,7 +47,7 @@ def folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 def _audit_argv(spec: Path, data: Path, store: Path, out: Path) -> list[str]:
     # Occlusion with a 1-pixel stride makes each image slow enough to be killed between images.
-    return [sys.executable, "-m", "pellucid.cli", "audit", "--model", str(spec), "--data", str(data),
+    return [sys.executable, "-m", "pellucid.cli", "audit", "--model", str(spec), "--images", str(data),
             "--store", str(store), "--out", str(out), "--method", "occlusion", "--param", "patch=4",
             "--param", "stride=1", "--shard-size", "1", "--workers", "1"]
 
@@ -163,7 +163,7 @@ def test_cli_refuses_a_read_only_store_at_start(command: str, tiny_spec: Path, f
 
     store = str(_read_only_folder(tmp_path))
     if command == "audit":
-        argv = ["audit", "--model", str(tiny_spec), "--data", str(folder), "--store", store,
+        argv = ["audit", "--model", str(tiny_spec), "--images", str(folder), "--store", store,
                 "--out", str(tmp_path / "out")]
     else:
         argv = ["runs", "list", "--store", store]

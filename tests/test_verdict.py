@@ -57,7 +57,7 @@ def audited(tmp_path_factory, tiny_spec):
     (root / "strict.toml").write_text(FAILING, encoding="utf-8")
     (root / "lenient.toml").write_text(PASSING, encoding="utf-8")
     store = root / "store"
-    base = ["audit", "--model", str(tiny_spec), "--data", str(data), "--store", str(store), "--quiet"]
+    base = ["audit", "--model", str(tiny_spec), "--images", str(data), "--store", str(store), "--quiet"]
     code_fail = main([*base, "--out", str(root / "a"), "--policy", str(root / "strict.toml"), "--fresh"])
     code_pass = main([*base, "--out", str(root / "b"), "--policy", str(root / "lenient.toml"), "--fresh"])
     first = json.loads((root / "a" / "summary.json").read_text())

@@ -33,8 +33,10 @@ def register(sub: argparse._SubParsersAction) -> None:
         ),
     )
     p.add_argument("--model", required=True, metavar="SPEC", help="model spec file or bundled model name")
-    p.add_argument("--data", required=True, type=Path, metavar="DIR",
-                   help="folder with one subfolder per class, or a CSV manifest (path,label[,box…,mask])")
+    p.add_argument("--images", type=Path, default=None, metavar="DIR",
+                   help="the images to audit: a folder with one subfolder per class, or a CSV manifest "
+                        "(path,label[,box…,mask]) (required)")
+    p.add_argument("--data", type=Path, default=None, dest="old_images", help=argparse.SUPPRESS)
     p.add_argument("--policy", type=Path, default=None, metavar="POLICY.toml",
                    help="thresholds to gate on (see the README's policy keys); without it the audit only reports")
     p.add_argument("--out", type=Path, required=True, metavar="DIR", help="folder for summary.json (and the report)")
@@ -155,7 +157,7 @@ def build_injection(args: argparse.Namespace, model: Any, policy: Any) -> Any | 
 def _command(args: argparse.Namespace) -> str:
     """The command that re-runs this audit, with absolute paths."""
     parts = ["pellucid", "audit", "--model", str(Path(args.model).resolve()) if Path(args.model).exists()
-             else args.model, "--data", str(args.data.resolve()), "--out", str(args.out.resolve())]
+             else args.model, "--images", str(args.images.resolve()), "--out", str(args.out.resolve())]
     if args.policy:
         parts += ["--policy", str(args.policy.resolve())]
     parts += ["--method", args.method]
@@ -226,8 +228,22 @@ def _pct(v: float | None) -> str:
     return "n/a" if v is None else f"{100 * v:.1f}%"
 
 
+def _image_folder_option(args: argparse.Namespace) -> None:
+    """--images is the audit's image folder; --data, its old name, still works for now and says so."""
+    from pellucid.core.errors import BadParameterError
+
+    if args.old_images is not None:
+        if args.images is not None:
+            raise BadParameterError("give the image folder once, with --images (--data is its old name)")
+        print("pellucid: note: 'audit --data' is now 'audit --images'; --data will be removed", file=sys.stderr)
+        args.images = args.old_images
+    if args.images is None:
+        raise BadParameterError("audit needs --images DIR: a folder of class subfolders or a CSV manifest")
+
+
 def _audit(args: argparse.Namespace) -> int:
     from pellucid.core.audit import AuditSettings, GallerySpec, load_dataset, run_audit
+    from pellucid.core.audit.engine import stop_requests_interrupt
     from pellucid.core.audit.policy import evaluate_policy, load_policy
     from pellucid.core.audit.store import Store, default_data_dir
     from pellucid.core.errors import BadParameterError
@@ -235,6 +251,7 @@ def _audit(args: argparse.Namespace) -> int:
     from pellucid.core.model.loading import load_model
     from pellucid.core.provenance import provenance
 
+    _image_folder_option(args)
     if args.out.exists() and not args.out.is_dir():
         raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")
     policy = load_policy(args.policy) if args.policy else None
@@ -251,7 +268,7 @@ def _audit(args: argparse.Namespace) -> int:
                                  shard_size=args.shard_size, threads=args.threads).validated()
         phases = _Phases(quiet=args.quiet)
         phases.phase("reading files")
-        dataset = load_dataset(args.data, progress=phases)
+        dataset = load_dataset(args.images, progress=phases)
         for s in dataset.skipped:
             print(f"skipped {s.rel}: {s.reason}", file=sys.stderr)
         injection = build_injection(args, model, policy)
@@ -259,12 +276,13 @@ def _audit(args: argparse.Namespace) -> int:
         if store.recovered:
             print(f"marked {len(store.recovered)} run(s) left running by a stopped process as interrupted: "
                   + ", ".join(store.recovered), file=sys.stderr)
-        outcome = run_audit(
-            model, dataset, store=store, settings=settings, injection=injection,
-            background_swap=args.background_swap, gallery=gallery, engine=args.engine, workers=args.workers,
-            ray_address=args.ray_address, resume=not args.fresh, command=_command(args),
-            trust_pickled=args.trust_pickled, progress=phases, on_phase=phases.phase,
-        )
+        with stop_requests_interrupt():  # SIGTERM stops like Ctrl-C: the run is stored as interrupted
+            outcome = run_audit(
+                model, dataset, store=store, settings=settings, injection=injection,
+                background_swap=args.background_swap, gallery=gallery, engine=args.engine, workers=args.workers,
+                ray_address=args.ray_address, resume=not args.fresh, command=_command(args),
+                trust_pickled=args.trust_pickled, progress=phases, on_phase=phases.phase,
+            )
         summary = outcome.summary
         result = evaluate_policy(policy, summary, labels=model.labels) if policy else None
         if result is not None:  # the verdict travels with the run (runs list, report, dashboard)

@@ -373,3 +373,28 @@ def test_server_refuses_a_nan_model_with_the_same_sentence(tmp_path):
         r = client.get("/api/models/t")
     assert r.status_code == 422
     assert r.json()["detail"] == str(info.value)
+
+
+class ReshapeToOne(nn.Module):
+    """reshape(1, -1) in forward: a TorchScript trace of it only takes a batch of 1."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        torch.manual_seed(0)
+        self.conv = nn.Conv2d(3, 4, 3, padding=1)
+        self.head = nn.Linear(4 * 16 * 16, 3)
+
+    def forward(self, x):
+        return self.head(torch.relu(self.conv(x)).reshape(1, -1))
+
+
+def test_torchscript_traced_at_batch_one_runs_one_image_at_a_time(tmp_path):
+    net = ReshapeToOne().eval()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # tracer and deprecation warnings
+        torch.jit.trace(net, torch.zeros(1, 3, 16, 16)).save(str(tmp_path / "m.ts"))
+    m = load_model(spec_file(tmp_path, 'kind = "torchscript"\nweights = "m.ts"'))
+    assert m.batch_fixed and not m.supports_hooks
+    x = torch.randn(4, 3, 16, 16)
+    with torch.inference_mode():
+        assert torch.allclose(m.module(x), torch.cat([net(x[i : i + 1]) for i in range(4)]), atol=1e-6)

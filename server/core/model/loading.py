@@ -465,7 +465,22 @@ class _OneAtATime:
 _ONE_AT_A_TIME_CLASSES: dict[type, type] = {}
 
 
+class _OneAtATimeScript(nn.Module):
+    """The same loop around a TorchScript module, whose class cannot be changed (it has no hooks to keep)."""
+
+    def __init__(self, net: nn.Module) -> None:
+        super().__init__()
+        self.net = net
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        if x.shape[0] == 1:
+            return self.net(x.contiguous())
+        return torch.cat([self.net(x[i : i + 1].contiguous()) for i in range(x.shape[0])])
+
+
 def _one_at_a_time(module: nn.Module) -> nn.Module:
+    if isinstance(module, torch.jit.ScriptModule):
+        return _OneAtATimeScript(module)
     base = type(module)
     cls = _ONE_AT_A_TIME_CLASSES.get(base)
     if cls is None:
@@ -476,8 +491,8 @@ def _one_at_a_time(module: nn.Module) -> nn.Module:
 
 
 def hooks_supported(module: nn.Module) -> bool:
-    """Whether forward hooks work on ``module`` (not on a TorchScript module, nor on our wrapper around one)."""
-    while isinstance(module, _SelectOutput):
+    """Whether forward hooks work on ``module`` (not on a TorchScript module, nor on our wrappers around one)."""
+    while isinstance(module, (_SelectOutput, _OneAtATimeScript)):
         module = module.net
     return not isinstance(module, torch.jit.ScriptModule)
 
@@ -486,7 +501,7 @@ def batch_fixed(module: nn.Module) -> bool:
     """Whether ``module`` was found to take one image per forward pass at load time."""
     while isinstance(module, _SelectOutput):
         module = module.net
-    return isinstance(module, _OneAtATime)
+    return isinstance(module, (_OneAtATime, _OneAtATimeScript))
 
 
 def factory_fingerprint(*, weights_sha256: str, factory: str, source: Path | None,
@@ -579,8 +594,10 @@ def load_model(spec: ModelSpec | str | Path, *, trust_pickled: bool = False) -> 
     except Exception:  # noqa: BLE001 - any failure here means "not batchable"; batch 1 worked above
         ok = False
     if not ok:
-        inner = module.net if isinstance(module, _SelectOutput) else module
-        _one_at_a_time(inner)
+        if isinstance(module, _SelectOutput):
+            module.net = _one_at_a_time(module.net)
+        else:
+            module = _one_at_a_time(module).eval()
         out2 = _dry_run(spec, module, pair)
         fixed = True
         notes.append(ONE_AT_A_TIME_NOTE)

@@ -101,7 +101,8 @@ def _show(args: argparse.Namespace) -> int:
         for c, v in s.get("per_class", {}).items():
             worst = max((n for n in ("top_left", "top_right", "bottom_left", "bottom_right")),
                         key=lambda n: v["regions"][n]["mean_share"] or 0.0)
-            print(f"  {c}: accuracy {_pct(v['accuracy'])}, object share {_pct(v['object_share'])}, "
+            on_object = f"object share {_pct(v['object_share'])}, " if v.get("with_object") else ""
+            print(f"  {c}: accuracy {_pct(v['accuracy'])}, {on_object}"
                   f"largest corner share {_pct(v['regions'][worst]['mean_share'])} ({worst})")
         for f in s.get("class_flags", []):
             print(f"flag: {f['sentence']}")

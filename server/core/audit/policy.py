@@ -76,11 +76,11 @@ THRESHOLDS: dict[str, tuple[str, str, str, str]] = {
     "min_accuracy": ("run", "fraction", ">=", "share of all images predicted correctly"),
     "min_class_accuracy": ("class", "fraction", ">=", "share of the class's images predicted correctly"),
     "max_corner_share": ("class", "fraction", "<=",
-                         "mean share of the class's positive evidence in any one corner box (only evidence off the "
-                         "object counts where boxes or masks are given)"),
+                         "mean share of the class's positive evidence in any one corner box (where boxes or masks "
+                         "are given, only evidence outside them counts)"),
     "max_border_share": ("class", "fraction", "<=",
-                         "mean share of the class's positive evidence in the border band (only evidence off the "
-                         "object counts where boxes or masks are given)"),
+                         "mean share of the class's positive evidence in the border band (where boxes or masks "
+                         "are given, only evidence outside them counts)"),
     "min_object_share": ("class", "fraction", ">=", "mean share of the class's positive evidence on the object"),
     "min_pointing_accuracy": ("class", "fraction", ">=",
                               ("pointing game: how often the map's maximum lands on the object (tolerance 15/224 of "

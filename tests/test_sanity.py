@@ -141,3 +141,60 @@ def test_gradient_saliency_of_demo_model_decorrelates_after_full_randomisation()
     x = normalise(torch.from_numpy(make_tile(label="crack", tagged=True, seed=7)).unsqueeze(0))
     res = sanity_check("saliency", model, x)
     assert res.steps[-1].spearman < 0.5 and res.verdict == "pass"
+
+
+def test_block_steps_follow_the_residual_blocks_and_progress_counts_maps():
+    # Source: Adebayo et al., NeurIPS 2018, §3.1 — cascading randomisation from the logits down.
+    # Blocks of torchvision's ResNet-18 (He et al., CVPR 2016): fc, layer4.1 … layer1.0, bn1, conv1.
+    import torchvision
+
+    from pellucid.core.attribution.sanity import block_of
+
+    torch.manual_seed(0)
+    net = torchvision.models.resnet18(num_classes=3).eval()
+    x = torch.randn(1, 3, 32, 32, generator=torch.Generator().manual_seed(1))
+    seen: list[tuple[int, int]] = []
+    res = sanity_check("saliency", net, x, time_budget=None, progress=lambda d, t: seen.append((d, t)))
+    expected = ["fc", "layer4.1", "layer4.0", "layer3.1", "layer3.0", "layer2.1", "layer2.0", "layer1.1",
+                "layer1.0", "bn1", "conv1"]
+    assert [block_of(s.layers[0]) for s in res.steps] == expected
+    assert all(len({block_of(n) for n in s.layers}) == 1 for s in res.steps)
+    assert res.extras["granularity"] == "block" and res.extras["layers_randomised"] == 41
+    # progress is in maps: the trained model's, then one per step; it only moves forward
+    assert seen[0] == (0, 12) and seen[-1] == (12, 12)
+    assert [d for d, _ in seen] == sorted(d for d, _ in seen) and {t for _, t in seen} == {12}
+    per_layer = sanity_check("saliency", net, x, granularity="layer", max_steps=5, time_budget=None)
+    assert len(per_layer.steps) == 5 and per_layer.extras["planned_steps"] == 41
+    assert [n for s in per_layer.steps for n in s.layers] == [n for s in res.steps for n in s.layers]
+
+
+def test_time_budget_merges_neighbouring_steps_but_keeps_the_minimum():
+    from pellucid.core.attribution.sanity import MIN_STEPS
+
+    torch.manual_seed(0)
+    net = nn.Sequential(*[m for _ in range(4) for m in (nn.Conv2d(3, 3, 3, padding=1), nn.ReLU())],
+                        nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(3, 2)).eval()
+    x = torch.randn(1, 3, 10, 10, generator=torch.Generator().manual_seed(2))
+    res = sanity_check("saliency", net, x, time_budget=1e-6)  # no time at all: the minimum
+    assert len(res.steps) == MIN_STEPS and res.extras["merged"] and res.extras["planned_steps"] == 5
+    assert [n for s in res.steps for n in s.layers] == ["10", "6", "4", "2", "0"]  # top down, none lost
+    with pytest.raises(BadParameterError, match="time_budget"):
+        sanity_check("saliency", net, x, time_budget=0)
+    with pytest.raises(BadParameterError, match="granularity"):
+        sanity_check("saliency", net, x, granularity="module")
+
+
+@pytest.mark.imagenet
+def test_efficientnet_lite0_steps_by_block():
+    # EfficientNet-Lite0 (Tan & Le, ICML 2019) has 16 inverted-residual blocks plus stem, head and
+    # classifier layers: 99 parameterised layers, 21 block steps.
+    pytest.importorskip("efficientnet_lite_pytorch", reason="needs the optional imagenet extra")
+    from pellucid.core.attribution.sanity import _layers_in_order, _steps
+    from pellucid.core.model.bundled import bundled_spec_path
+    from pellucid.core.model.loading import load_model
+
+    lm = load_model(bundled_spec_path("efficientnet-lite0"))
+    layers = list(reversed(_layers_in_order(lm.module, torch.zeros(1, 3, 224, 224))))
+    steps = _steps(layers, "block")
+    assert len(layers) == 99 and len(steps) == 21
+    assert steps[0] == ["_fc"] and steps[-1] == ["_conv_stem"] and steps[3][0].startswith("_blocks.15.")

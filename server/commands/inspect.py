@@ -89,13 +89,56 @@ def _list_methods() -> int:
     return 0
 
 
+def _occlusion_params(args: argparse.Namespace, given: dict[str, str], model: Any) -> dict[str, Any] | None:
+    """The occlusion map's checked settings from --patch/--stride/--baseline/--engine and --param occlusion.*.
+
+    Every key is checked by the method's schema (unknown keys and out-of-range values are errors, never
+    ignored or replaced by a default); patch and stride left unset follow the one default rule.
+    """
+    from pellucid.core.attribution import check_request
+    from pellucid.core.errors import BadParameterError
+    from pellucid.core.occlusion.positions import default_occlusion_geometry
+
+    if not args.occlusion:
+        if given:
+            raise BadParameterError("--param occlusion.… was given together with --no-occlusion; drop one of them")
+        return None
+    flags = {k: v for k, v in (("patch", args.patch), ("stride", args.stride)) if v is not None}
+    twice = sorted(set(flags) & set(given))
+    if twice:
+        raise BadParameterError(f"the occlusion {twice[0]} was given twice (--{twice[0]} and --param "
+                                f"occlusion.{twice[0]}); give it once")
+    asked = {"baseline": args.baseline, "engine": args.engine, **flags, **given}
+    checked = check_request("occlusion", model.module, model.input_shape, asked)  # unknown keys, ranges
+    h, w = model.spec.input.height, model.spec.input.width
+    patch, stride = default_occlusion_geometry(h, w, patch=checked["patch"], stride=checked["stride"])
+    return check_request("occlusion", model.module, model.input_shape, {**checked, "patch": patch, "stride": stride})
+
+
 def _inspect(args: argparse.Namespace) -> int:
+    """Write every view into a private folder first and move the files into --out only when all of
+    them are written, so an error part way (a bad parameter found late, a failing method) leaves
+    --out as it was."""
+    import shutil
+    import tempfile
+
+    from pellucid.core.errors import BadParameterError
+
     if args.list_methods:
         return _list_methods()
     if args.image is None or args.out is None:
-        from pellucid.core.errors import BadParameterError
-
         raise BadParameterError("inspect needs an IMAGE and --out DIR (or --list-methods)")
+    if args.out.exists() and not args.out.is_dir():
+        raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")
+    with tempfile.TemporaryDirectory(prefix="pellucid-inspect-") as staging:
+        code = _write_views(args, Path(staging))
+        args.out.mkdir(parents=True, exist_ok=True)
+        for item in sorted(Path(staging).iterdir()):
+            shutil.move(str(item), str(args.out / item.name))
+    return code
+
+
+def _write_views(args: argparse.Namespace, out: Path) -> int:
     from pellucid.core.attribution import Normalization, check_request, compute_attribution, get_method
     from pellucid.core.errors import BadParameterError, UnsupportedLayerError
     from pellucid.core.model.bundled import resolve_model_ref
@@ -118,13 +161,10 @@ def _inspect(args: argparse.Namespace) -> int:
     model = load_model(resolve_model_ref(args.model), trust_pickled=args.trust_pickled)
     for name in args.method:  # e.g. Grad-CAM on TorchScript: one sentence before any work
         check_request(name, model.module, model.input_shape, params.get(name))
+    occlusion = _occlusion_params(args, params.pop("occlusion", {}), model)
     prepared = prepare(model.spec, image)
     x = prepared.tensor
     target = model.class_index(args.target) if args.target is not None else None
-    out: Path = args.out
-    if out.exists() and not out.is_dir():
-        raise BadParameterError(f"--out {str(out)!r} exists and is not a folder")
-    out.mkdir(parents=True, exist_ok=True)
     written: dict[str, str] = {}
     pictures: dict[str, dict[str, Any]] = {}
     in_h, in_w = prepared.display.shape[:2]
@@ -203,14 +243,11 @@ def _inspect(args: argparse.Namespace) -> int:
 
     maps: dict[str, Any] = {}
     computed: dict[str, Any] = {}
-    if args.occlusion:
-        h, w = model.spec.input.height, model.spec.input.width
-        from pellucid.core.occlusion.positions import default_occlusion_geometry
-
-        patch, stride = default_occlusion_geometry(h, w, patch=args.patch, stride=args.stride)
+    if occlusion is not None:
         t0 = time.perf_counter()
-        occ = occlusion_map(model.module, x, target=explained, patch=patch, stride=stride, baseline=args.baseline,
-                            output=model.output_kind, method=args.engine,
+        occ = occlusion_map(model.module, x, target=explained, patch=occlusion["patch"], stride=occlusion["stride"],
+                            baseline=occlusion["baseline"], method=occlusion["engine"],
+                            output="logit" if occlusion["output"] == "logit" else model.output_kind,
                             progress=ProgressBar("occlusion", quiet=args.quiet))
         lo, hi = render.value_range(occ.drop, signed=True)
         range_text = f"diverging colours symmetric around 0 over [{lo:.4g}, {hi:.4g}] (drop in probability)"
@@ -273,7 +310,7 @@ def _inspect(args: argparse.Namespace) -> int:
     print(f"{args.image.name}: {top}")
     if prepared.notes:
         print("notes: " + "; ".join(prepared.notes))
-    print(f"wrote {len(written) + 1} files to {out}")
+    print(f"wrote {len(written) + 1} files to {args.out}")
     return 0
 
 

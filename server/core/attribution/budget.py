@@ -99,6 +99,13 @@ def occlusion_grid(size: tuple[int, int], patch: int, stride: int) -> int:
     return along(size[0]) * along(size[1])
 
 
+def _geometry(params: dict[str, Any], size: tuple[int, int]) -> tuple[int, int]:
+    """Occlusion patch and stride, with the one default rule where they are not given."""
+    from pellucid.core.occlusion.positions import default_occlusion_geometry
+
+    return default_occlusion_geometry(size[0], size[1], patch=params.get("patch"), stride=params.get("stride"))
+
+
 def _batch(method: str, params: dict[str, Any], input_shape: tuple[int, int, int], positions: int | None) -> int:
     if method == "occlusion":
         from pellucid.core.occlusion.engine import _default_batch  # the batched engine's own choice
@@ -114,7 +121,7 @@ def estimate_job(method: str, params: dict[str, Any], *, input_shape: tuple[int,
     m = get_method(method)
     size = (int(input_shape[1]), int(input_shape[2]))
     forwards = float(m.cost(params, size))
-    positions = occlusion_grid(size, params["patch"], params["stride"]) if method == "occlusion" else None
+    positions = occlusion_grid(size, *_geometry(params, size)) if method == "occlusion" else None
     batch = _batch(method, params, input_shape, positions)
     per_image = in_flight.backward if m.uses_gradients else in_flight.forward
     return JobEstimate(
@@ -133,7 +140,7 @@ def check_job(estimate: JobEstimate, params: dict[str, Any], limits: JobLimits) 
     """Raise BadParameterError, with the limit and a value that fits, when the job is over a limit."""
     h, w = estimate.input_size
     if estimate.positions is not None and estimate.positions > limits.max_occlusion_positions:
-        patch, stride = params["patch"], params["stride"]
+        patch, stride = _geometry(params, (h, w))
         fits = next((s for s in range(stride + 1, max(h, w) + 1)
                      if occlusion_grid((h, w), max(patch, s), s) <= limits.max_occlusion_positions), None)
         if fits is None:

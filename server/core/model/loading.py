@@ -229,6 +229,12 @@ def read_state_dict(path: Path) -> dict[str, torch.Tensor]:
             return load_file(str(path), device="cpu")
         data = torch.load(str(path), map_location="cpu", weights_only=True)
     except Exception as exc:  # noqa: BLE001 - any decoder failure means the same thing to the user
+        if "Weights only load failed" in str(exc):  # torch's own advice here is how to lift the safety
+            raise ModelLoadError(
+                f"{str(path)!r} holds Python objects besides tensors (a whole pickled model?), and Pellucid reads "
+                "weights files without running code from them. Save model.state_dict() instead, or, for a model "
+                "file you made yourself, use kind = \"pickled\" and the trust flag"
+            ) from None
         raise ModelLoadError(
             f"could not read weights from {str(path)!r}: not a readable state_dict ({_first_line(exc)}). "
             "Expected a .safetensors file or a torch.save(model.state_dict()) file."
@@ -377,6 +383,11 @@ def _build(spec: ModelSpec, weights: Path | None, *, trust_pickled: bool) -> _Bu
         except TypeError as exc:
             raise ModelLoadError(f"factory {spec.source.factory!r} rejected arguments "
                                  f"{spec.source.arguments}: {exc}") from exc
+        except PellucidError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - the factory is the user's code: its failure is a load error
+            raise ModelLoadError(f"factory {spec.source.factory!r} raised {type(exc).__name__} while building "
+                                 f"the model: {_first_line(exc)}") from None
         if not isinstance(module, nn.Module):
             raise ModelLoadError(f"factory {spec.source.factory!r} returned {type(module).__name__}, "
                                  "not a torch nn.Module")

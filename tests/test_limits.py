@@ -184,3 +184,24 @@ def test_uploaded_names_keep_no_nul_or_backslash(client: TestClient):
     assert r.status_code == 200, r.text
     assert r.json()["name"] == "tile.png"
     assert all(c.isprintable() and c != "\\" for c in client.get("/api/images").json()[0]["name"])
+
+
+# --- colour scales ---------------------------------------------------------------------------------------
+
+
+def test_colour_scales_beyond_float32_are_refused(client: TestClient):
+    # Maps are float32: a scale end beyond its largest finite value (3.4028235e38; Source: IEEE 754-2019,
+    # binary32) cannot be drawn and once gave a 200 with a garbage overlay.
+    image = client.post("/api/images", files={"file": ("t.png", png_bytes(synthetic_tile(seed=5)), "image/png")})
+    job = client.post("/api/jobs", json={"image": image.json()["id"], "method": "saliency"}).json()
+    ws = client.app.state.workspace
+    rid = ws.jobs.wait(job["id"], timeout=60).meta["result_id"]
+    for query in ({"vmin": -1e39, "vmax": 1e39}, {"vmin": 0, "vmax": 4e38}, {"vmin": "-inf", "vmax": 1},
+                  {"vmin": 0, "vmax": "nan"}, {"vmin": 0, "vmax": 1e-40}):
+        for path in (f"/api/results/{rid}", f"/api/results/{rid}/overlay.png"):
+            r = client.get(path, params=query)
+            assert r.status_code == 422, (query, path, r.status_code)
+            assert "vmin" in r.json()["detail"]
+    r = client.get(f"/api/results/{rid}", params={"vmin": -3e38, "vmax": 3e38})
+    assert r.status_code == 200  # wide, but within float32: drawn
+    assert client.get(f"/api/results/{rid}/overlay.png", params={"vmin": 0, "vmax": 1}).status_code == 200

@@ -6,7 +6,7 @@ import platform
 
 import torch
 from fastapi import APIRouter, Depends
-from pydantic import BaseModel
+from pydantic import BaseModel, Field
 
 from pellucid import __version__
 from pellucid.web.deps import get_workspace
@@ -33,6 +33,9 @@ class StatusResponse(BaseModel):
     spec_errors: dict[str, str]
     jobs_running: int
     cached_results: int
+    job_lanes: dict[str, dict[str, int]] = Field(
+        description="per lane (interactive, background): jobs queued and running, workers and limits")
+    image_memory: dict[str, int] = Field(description="bytes of decoded images held now, and the budget")
 
 
 def status_payload(ws: Workspace) -> StatusResponse:
@@ -56,6 +59,8 @@ def status_payload(ws: Workspace) -> StatusResponse:
         spec_errors=ws.spec_errors,
         jobs_running=sum(1 for j in ws.jobs.list() if j.state == "running"),
         cached_results=len(ws.cache),
+        job_lanes=ws.jobs.counts(),
+        image_memory={"used": ws.image_cache.bytes_used, "budget": ws.image_cache.budget_bytes},
     )
 
 

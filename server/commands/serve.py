@@ -29,6 +29,12 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--allow-host", action="append", default=[], metavar="NAME",
                    help="another name the server answers to without a token (e.g. an alias of this machine "
                         "in /etc/hosts); 127.0.0.1, localhost and [::1] always work")
+    p.add_argument("--image-memory", type=int, default=512, metavar="MB",
+                   help="memory for decoded images the server holds; the least recently used go first (default 512)")
+    p.add_argument("--job-memory", type=int, default=2048, metavar="MB",
+                   help="estimated memory one map's or audit's batches may take; more is refused (default 2048)")
+    p.add_argument("--max-occlusion-positions", type=int, default=20_000, metavar="N",
+                   help="occlusion grids with more patch positions are refused (default 20000)")
     p.add_argument("--trust-pickled", action="store_true",
                    help="allow specs of kind 'pickled' (unpickling runs code from the file; only for your own files)")
     p.set_defaults(func=_serve, hold_output=False)  # a server's log must show as it happens
@@ -42,7 +48,7 @@ def _serve(args: argparse.Namespace) -> int:
     from pellucid.core.model.bundled import resolve_model_ref
     from pellucid.web.app import create_app
     from pellucid.web.security import display_base_url
-    from pellucid.web.settings import Settings
+    from pellucid.web.settings import MiB, Settings
 
     if args.old_store is not None:
         if args.store is not None:
@@ -51,6 +57,10 @@ def _serve(args: argparse.Namespace) -> int:
         args.store = args.old_store
     if not 1 <= args.port <= 65535:
         raise BadParameterError(f"--port must be from 1 to 65535; received {args.port}")
+    for flag, value in (("--image-memory", args.image_memory), ("--job-memory", args.job_memory),
+                        ("--max-occlusion-positions", args.max_occlusion_positions)):
+        if value < 1:
+            raise BadParameterError(f"{flag} must be a positive whole number; received {value}")
     models = tuple(str(resolve_model_ref(m)) for m in (args.model or ["tilenet"]))
     if args.images is not None and not args.images.is_dir():
         raise DataError(f"--images {str(args.images)!r} is not a folder")
@@ -63,6 +73,9 @@ def _serve(args: argparse.Namespace) -> int:
         trust_pickled=args.trust_pickled,
         token=args.token,
         allowed_hosts=tuple(args.allow_host),
+        max_image_memory=args.image_memory * MiB,
+        max_job_memory=args.job_memory * MiB,
+        max_occlusion_positions=args.max_occlusion_positions,
     )
     # Refuse an unusable store now, with one plain line, rather than on the first audit.
     Store(settings.data_dir).close()

@@ -207,13 +207,15 @@ def _alive(pids: list[int]) -> list[int]:
     return alive
 
 
-def _start_pool_audit(tiny_spec: Path, folder: Path, tmp_path: Path) -> tuple[subprocess.Popen, list[int]]:
+def _start_pool_audit(tiny_spec: Path, folder: Path, tmp_path: Path, *,
+                      busy: bool = True) -> tuple[subprocess.Popen, list[int]]:
+    """``pellucid audit --workers 2``, once both workers exist (and, when ``busy``, results are stored)."""
     argv = [*_audit_argv(tiny_spec, folder, tmp_path / "store", tmp_path / "out")]
     argv[argv.index("--workers") + 1] = "2"
     proc = subprocess.Popen(argv, cwd=REPO, env=_env(tiny_spec), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                             start_new_session=True)
     deadline = time.time() + 180
-    while len(_workers_of(proc.pid)) < 2 or not _finished(tmp_path / "store" / DB_NAME):
+    while len(_workers_of(proc.pid)) < 2 or (busy and not _finished(tmp_path / "store" / DB_NAME)):
         assert proc.poll() is None, f"the audit ended early: {proc.stderr.read()!r}"
         assert time.time() < deadline, "the audit's two workers did not start storing results in time"
         time.sleep(0.1)
@@ -230,8 +232,11 @@ def _wait_gone(pids: list[int], limit: float = 60.0) -> list[int]:
 
 @pytest.mark.slow
 @pytest.mark.skipif(not Path("/proc").is_dir(), reason="reads process lists from /proc")
-def test_workers_end_when_the_audit_is_killed(tiny_spec: Path, folder: Path, tmp_path: Path) -> None:
-    proc, workers = _start_pool_audit(tiny_spec, folder, tmp_path)
+@pytest.mark.parametrize("moment", ["starting", "busy"])
+def test_workers_end_when_the_audit_is_killed(moment: str, tiny_spec: Path, folder: Path, tmp_path: Path) -> None:
+    # "starting": killed while the workers still start up (before any can have imported torch);
+    # "busy": killed while they explain images.
+    proc, workers = _start_pool_audit(tiny_spec, folder, tmp_path, busy=moment == "busy")
     try:
         os.kill(proc.pid, signal.SIGKILL)  # the parent only: nothing gets a chance to clean up
         proc.wait(timeout=30)

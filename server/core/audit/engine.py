@@ -10,22 +10,19 @@
 Shards come back in completion order; the caller stores each one as it arrives. Every engine
 runs the same function on the same inputs with the same thread count, so results are equal.
 
-Worker processes never outlive the audit. Each one asks the kernel to kill it when its parent
-dies (``prctl(PR_SET_PDEATHSIG)`` on Linux) and also watches its parent's process id (the
-portable fallback, and a guard for a parent that died before the request was made); it ignores
-Ctrl-C, which the parent handles. When the map ends early (an error, a cancel, Ctrl-C, or a stop
-request, which :func:`stop_requests_interrupt` turns into KeyboardInterrupt), the parent
-terminates the workers still busy instead of waiting for their shards.
+Worker processes never outlive the audit: they end when their parent does (``core/lifeline.py``,
+their initializer, which a spawned worker loads before torch). When the map ends early (an
+error, a cancel, Ctrl-C, or a stop request, which :func:`stop_requests_interrupt` turns into
+KeyboardInterrupt), the parent terminates the workers still busy instead of waiting for their
+shards.
 """
 
 from __future__ import annotations
 
 import contextlib
-import ctypes
 import multiprocessing
 import os
 import signal
-import sys
 import threading
 import time
 from collections.abc import Iterator
@@ -33,6 +30,7 @@ from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wai
 
 from pellucid.core.audit.worker import ImageOutcome, ShardTask, process_shard
 from pellucid.core.errors import BadParameterError, Cancelled
+from pellucid.core.lifeline import die_with_parent
 from pellucid.core.model.loading import LoadedModel
 from pellucid.core.progress import CancelToken
 
@@ -40,31 +38,7 @@ __all__ = ["ENGINES", "ray_available", "run_shards", "stop_requests_interrupt"]
 
 ENGINES = ("local", "ray")
 _POLL_SECONDS = 0.2
-_PARENT_CHECK_SECONDS = 0.5
-_PR_SET_PDEATHSIG = 1  # from <linux/prctl.h>
 _TERMINATE_GRACE_SECONDS = 5.0
-
-
-def _die_with_parent(parent_pid: int) -> None:
-    """Worker initializer: end this process when the parent process ends (see the module docstring)."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C reaches the whole group; the parent decides
-    if sys.platform.startswith("linux"):
-        try:
-            ctypes.CDLL(None, use_errno=True).prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
-        except (OSError, AttributeError):
-            pass  # no prctl here: the watcher below still ends the process
-    if os.getppid() != parent_pid:
-        os._exit(1)
-    threading.Thread(target=_watch_parent, args=(parent_pid,), name="pellucid-parent-watch", daemon=True).start()
-
-
-def _watch_parent(parent_pid: int) -> None:
-    # The kernel's death signal fires when the *thread* that started us ends, and not at all off
-    # Linux; the parent's id changing (to init or a subreaper) is the fact that matters.
-    while True:
-        if os.getppid() != parent_pid:
-            os._exit(1)
-        time.sleep(_PARENT_CHECK_SECONDS)
 
 
 def _raise_interrupt(signum: int, _frame: object) -> None:
@@ -146,7 +120,7 @@ def _pool(tasks: list[ShardTask], *, workers: int, cancel: CancelToken | None) -
     # spawn, not fork: forking a process that already runs torch threads can deadlock.
     context = multiprocessing.get_context("spawn")
     pool = ProcessPoolExecutor(max_workers=min(workers, len(tasks)), mp_context=context,
-                               initializer=_die_with_parent, initargs=(os.getpid(),))
+                               initializer=die_with_parent, initargs=(os.getpid(),))
     finished = False
     try:
         with stop_requests_interrupt():

@@ -439,14 +439,76 @@ def test_integrated_gradients_riemann_rules_on_square(steps):
     # Riemann sum with m steps gives (1/m) Σₖ 2k/m = (m+1)/m; the trapezoid rule is exact (the
     # integrand 2α is linear).
     x = torch.ones(1, 1, 1, 1)
+    fixed = {"baseline": "zero", "steps": steps, "max_steps": steps}  # no automatic doubling
     right = compute_attribution("integrated_gradients", SquareModel(), x, target=0,
-                                params={"baseline": "zero", "steps": steps, "rule": "right"})
+                                params={**fixed, "rule": "right"})
     trap = compute_attribution("integrated_gradients", SquareModel(), x, target=0,
-                               params={"baseline": "zero", "steps": steps, "rule": "trapezoid"})
+                               params={**fixed, "rule": "trapezoid"})
     assert math.isclose(float(right.raw.sum()), (steps + 1) / steps, rel_tol=1e-6)
     assert math.isclose(float(trap.raw.sum()), 1.0, rel_tol=1e-6)
     assert math.isclose(right.extras["completeness_error"], 1 / steps, rel_tol=1e-5)
     assert ("warning" in right.extras) == (1 / steps > 0.05)
+
+
+def test_integrated_gradients_doubles_steps_until_complete_reusing_points():
+    # Source: derived from Sundararajan et al., ICML 2017, Eq. 3 — for F = x² on [0, 1] the right
+    # sum with m steps is (m+1)/m, error 1/m: starting at 1 step, doubling stops at m = 32 (error
+    # 1/32 ≤ 5%, 1/16 > 5%), and the sum built from reused points must equal the direct 32-step sum.
+    x = torch.ones(1, 1, 1, 1)
+    amap = compute_attribution("integrated_gradients", SquareModel(), x, target=0,
+                               params={"baseline": "zero", "steps": 1, "max_steps": 64, "rule": "right"})
+    assert amap.extras["steps_used"] == 32
+    assert [h["steps"] for h in amap.extras["steps_history"]] == [1, 2, 4, 8, 16, 32]
+    assert math.isclose(float(amap.raw.sum()), 33 / 32, rel_tol=1e-6)
+    assert amap.n_backwards == 32  # each point once: 1 + 1 + 2 + 4 + 8 + 16
+    capped = compute_attribution("integrated_gradients", SquareModel(), x, target=0,
+                                 params={"baseline": "zero", "steps": 1, "max_steps": 8, "rule": "right"})
+    assert capped.extras["steps_used"] == 8 and "max_steps" in capped.extras["warning"]
+    assert math.isclose(float(capped.raw.sum()), 9 / 8, rel_tol=1e-6)
+
+
+def _black_score_gap(model, x, mean, std, target):
+    """F(x) − F(black) for the target's pre-softmax score, black = (0 − mean) / std per channel."""
+    black = ((torch.zeros_like(x) - torch.tensor(mean).view(1, -1, 1, 1)) / torch.tensor(std).view(1, -1, 1, 1))
+    with torch.no_grad():
+        return float(model(x)[0, target]) - float(model(black)[0, target])
+
+
+def test_integrated_gradients_defaults_complete_on_bundled_demo_model():
+    # Source: Sundararajan, Taly, Yan, ICML 2017, Prop. 1 (completeness) and §"Computing
+    # Integrated Gradients" (within 5%); the score gap is computed here, not taken from the method.
+    from pellucid.demo.net import TILE_MEAN, TILE_STD
+
+    model = _demo_model()
+    x = _demo_tile("crack", tagged=True)
+    amap = compute_attribution("integrated_gradients", model, x, normalization=Normalization.of(TILE_MEAN, TILE_STD))
+    gap = _black_score_gap(model, x, TILE_MEAN, TILE_STD, amap.target)
+    assert abs(float(amap.raw.astype(np.float64).sum()) - gap) <= 0.05 * abs(gap)
+    assert "warning" not in amap.extras
+
+
+@pytest.mark.imagenet
+def test_integrated_gradients_defaults_complete_on_bundled_imagenet_model():
+    # Source: as above, on the bundled EfficientNet-Lite0 with scikit-image's chelsea.png.
+    pytest.importorskip("efficientnet_lite_pytorch", reason="needs the optional imagenet extra")
+    skimage_data = pytest.importorskip("skimage.data")
+    import io
+
+    from PIL import Image
+
+    from pellucid.core.model.bundled import bundled_spec_path
+    from pellucid.core.model.loading import load_model
+    from pellucid.core.model.preprocess import prepare, read_image
+
+    lm = load_model(bundled_spec_path("efficientnet-lite0"))
+    buf = io.BytesIO()
+    Image.fromarray(skimage_data.chelsea()).save(buf, format="PNG")
+    x = prepare(lm.spec, read_image(buf.getvalue())).tensor
+    mean, std = lm.spec.preprocess.mean, lm.spec.preprocess.std
+    amap = compute_attribution("integrated_gradients", lm.module, x, normalization=Normalization.of(mean, std))
+    gap = _black_score_gap(lm.module, x, mean, std, amap.target)
+    assert abs(float(amap.raw.astype(np.float64).sum()) - gap) <= 0.05 * abs(gap)
+    assert amap.extras["steps_used"] >= 32 and "warning" not in amap.extras
 
 
 def test_integrated_gradients_completeness_on_small_cnn(cnn, image):

@@ -4,8 +4,13 @@ Sundararajan, Taly, Yan, "Axiomatic Attribution for Deep Networks", ICML 2017:
 IGᵢ = (xᵢ − x′ᵢ) ∫₀¹ ∂F(x′ + α(x − x′))/∂xᵢ dα (Eq. 1), approximated by a Riemann sum over m
 steps (Eq. 3, the right rule) or here by default the trapezoid rule, which has the same cost
 plus one point and is usually closer. F is the pre-softmax score of the target class.
-Completeness (Prop. 1): Σᵢ IGᵢ = F(x) − F(x′); we report the relative error of the sum and warn
-above 5% (the paper: 20–300 steps usually get within 5%).
+Completeness (Prop. 1): Σᵢ IGᵢ = F(x) − F(x′); we report the relative error of the sum (the paper:
+20–300 steps usually get within 5%).
+
+Steps are raised automatically: when the error exceeds 5% the step count doubles, up to
+``max_steps``. Doubling a uniform grid only adds the midpoints of the current one, so every
+gradient already taken is reused (the right and trapezoid sums of 2m steps are half those of m
+steps plus the new midpoints / 2m). The result reports the steps used; above ``max_steps`` it warns.
 """
 
 from __future__ import annotations
@@ -15,7 +20,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from pellucid.core.attribution._common import batches, input_gradient
+from pellucid.core.attribution._common import batches, input_gradient, logits_of
 from pellucid.core.attribution.baselines import BASELINE_KINDS, make_baseline
 from pellucid.core.attribution.params import Param, ParamSchema
 from pellucid.core.attribution.registry import Context, Method, register
@@ -28,7 +33,10 @@ SCHEMA = ParamSchema((
     Param("baseline", "choice", "black", "reference input: black image (paper's choice for images), zero in "
           "input space, blurred copy, constant grey level, or a tensor the caller supplies",
           choices=BASELINE_KINDS),
-    Param("steps", "int", 64, "Riemann steps along the straight path (paper: 20–300 suffice)", min=1, max=4096),
+    Param("steps", "int", 32, "Riemann steps along the straight path to start with (paper: 20–300 suffice); "
+          "doubled while the completeness error exceeds 5%", min=1, max=4096),
+    Param("max_steps", "int", 512, "the most steps the doubling may reach; set it to 'steps' to keep the count "
+          "fixed", min=1, max=8192),
     Param("rule", "choice", "trapezoid", "Riemann rule: 'right' (the paper's Eq. 3) or 'trapezoid'",
           choices=("right", "trapezoid")),
     Param("baseline_value", "float", 0.5, "pixel intensity in [0, 1] for the 'constant' baseline",
@@ -59,34 +67,68 @@ def _integrated_gradients(
         x, kind, normalization=context.normalization, value=params["baseline_value"],
         sigma=params["blur_sigma"], given=context.baseline_input,
     )
-    alphas, weights = path_weights(params["steps"], params["rule"])
-    n = len(alphas)
+    steps, cap, rule = params["steps"], max(params["max_steps"], params["steps"]), params["rule"]
     diff = x - ref
-    total = torch.zeros_like(x[0], dtype=torch.float64)
-    f_x = f_ref = None
-    step(0, n, progress=progress, cancel=cancel)
-    for start, stop in batches(n, params["batch_size"]):
+    scores: dict[float, float] = {}
+
+    def gradient_sum(alphas: torch.Tensor, done: int, planned: int) -> torch.Tensor:
+        """Σ over the path points ``alphas`` of ∂F/∂x (float64, (C, H, W)); records F at 0 and 1."""
+        out = torch.zeros_like(x[0], dtype=torch.float64)
+        for start, stop in batches(len(alphas), params["batch_size"]):
+            step(done + start, planned, progress=progress, cancel=cancel)
+            a = alphas[start:stop].to(dtype=x.dtype, device=x.device).view(-1, 1, 1, 1)
+            grad, score = input_gradient(model, ref + a * diff, target)
+            out += grad.to(torch.float64).sum(dim=0)
+            for alpha, value in zip(alphas[start:stop].tolist(), score.tolist()):
+                if alpha in (0.0, 1.0):
+                    scores[alpha] = float(value)
+        return out
+
+    # the first grid: the right rule's points k/m (k = 1…m), the trapezoid's k/m (k = 0…m)
+    alphas, weights = path_weights(steps, rule)
+    planned = len(alphas)
+    integral = torch.zeros_like(x[0], dtype=torch.float64)
+    for start, stop in batches(len(alphas), params["batch_size"]):
+        step(start, planned, progress=progress, cancel=cancel)
         a = alphas[start:stop].to(dtype=x.dtype, device=x.device).view(-1, 1, 1, 1)
         grad, score = input_gradient(model, ref + a * diff, target)
-        wts = weights[start:stop].to(device=x.device).view(-1, 1, 1, 1)
-        total += (grad.to(torch.float64) * wts).sum(dim=0)
-        if start == 0 and params["rule"] == "trapezoid":
-            f_ref = float(score[0])
-        if stop == n:
-            f_x = float(score[-1])  # α = 1 is the last point under both rules
-        step(stop, n, progress=progress, cancel=cancel)
+        integral += (grad.to(torch.float64) * weights[start:stop].view(-1, 1, 1, 1)).sum(dim=0)
+        for alpha, value in zip(alphas[start:stop].tolist(), score.tolist()):
+            if alpha in (0.0, 1.0):
+                scores[alpha] = float(value)
+    n_points = planned
     extra_forwards = 0
-    if f_ref is None:
+    if 0.0 not in scores:
         with torch.inference_mode():
-            f_ref = float(model(ref)[0, target])
+            scores[0.0] = float(logits_of(model, ref)[0, target])
         extra_forwards = 1
-    attr = (diff[0].to(torch.float64) * total).to(torch.float32)
+    f_x, f_ref = scores[1.0], scores[0.0]
     delta = f_x - f_ref
+    degenerate = abs(delta) < 1e-6 * max(1.0, abs(f_x))
+
+    def error_of(total: torch.Tensor) -> float:
+        return abs(float((diff[0].to(torch.float64) * total).sum()) - delta) / abs(delta)
+
+    history = []
+    while not degenerate:
+        err = error_of(integral)
+        history.append({"steps": steps, "completeness_error": err})
+        if err <= COMPLETENESS_WARN or steps * 2 > cap:
+            break
+        # midpoints of the current grid: (2k − 1)/2m, k = 1…m; both rules then weigh them 1/2m
+        mids = (2 * torch.arange(1, steps + 1, dtype=torch.float64) - 1) / (2 * steps)
+        integral = integral / 2 + gradient_sum(mids, n_points, n_points + len(mids)) / (2 * steps)
+        n_points += len(mids)
+        steps *= 2
+    step(n_points, n_points, progress=progress, cancel=cancel)
+
+    attr = (diff[0].to(torch.float64) * integral).to(torch.float32)
     attr_sum = float(attr.to(torch.float64).sum())
     extras: dict[str, Any] = {
-        "score_input": f_x, "score_baseline": f_ref, "attribution_sum": attr_sum,
+        "score_input": f_x, "score_baseline": f_ref, "attribution_sum": attr_sum, "steps_used": steps,
+        "steps_history": history,
     }
-    if abs(delta) < 1e-6 * max(1.0, abs(f_x)):
+    if degenerate:
         extras["completeness_error"] = None
         extras["warning"] = (
             "the baseline scores the same as the image (F(x) − F(baseline) ≈ 0), so the completeness "
@@ -97,16 +139,18 @@ def _integrated_gradients(
         extras["completeness_error"] = err
         if err > COMPLETENESS_WARN:
             extras["warning"] = (
-                f"completeness error {err:.1%} exceeds 5%: the attributions do not add up to "
-                f"F(x) − F(baseline) = {delta:.4g}; increase 'steps' (now {params['steps']})"
+                f"completeness error {err:.1%} exceeds 5% at {steps} steps (the most allowed, 'max_steps'): the "
+                f"attributions do not add up to F(x) − F(baseline) = {delta:.4g}; raise 'max_steps' or try "
+                "another baseline"
             )
     return MethodOutput(
         map=attr.sum(dim=0).cpu().numpy(), signed=True, raw=attr.cpu().numpy(),
-        n_forwards=n + extra_forwards, n_backwards=n, extras=extras,
+        n_forwards=n_points + extra_forwards, n_backwards=n_points, extras=extras,
     )
 
 
 def _cost(params: dict[str, Any], size: tuple[int, int]) -> float:
+    """Forward-pass equivalents at the start; doubling can raise it up to ``max_steps`` points."""
     points = params["steps"] + (1 if params["rule"] == "trapezoid" else 0)
     return 3.0 * points + (1.0 if params["rule"] == "right" else 0.0)
 

@@ -3,7 +3,8 @@
 On a terminal the bar redraws in place (at most ten times a second) with done/total, rate and
 time left. Without a terminal (CI logs, ``| tee``, cron) a redrawn bar would be noise, so one
 plain line is written every ``PELLUCID_PROGRESS_SECONDS`` seconds (default 5) and one when the
-work ends::
+work ends; work that ends within the first interval writes nothing, so a command that stops early
+on bad input still says so in one line::
 
     audit: 120/400 (30%), 3.1 images/s, about 1m30s left
 
@@ -54,6 +55,7 @@ class ProgressBar:
         self.interval = 0.1 if self._tty else (_plain_interval() if interval is None else interval)
         self._last = self.started
         self._finished = False
+        self._printed = False
 
     def __call__(self, done: int, total: int) -> None:
         if self.quiet or self._finished:
@@ -75,6 +77,9 @@ class ProgressBar:
                     f"{rate:.1f}/s {tail}")
             self.stream.write("\r" + line + ("\n" if finished else ""))
         elif finished:
+            if not self._printed and elapsed < self.interval:
+                self._finished = True
+                return
             self.stream.write(f"{self.label}: {total}/{total}{unit} done in {_duration(elapsed)}"
                               f"{f', {rate:.1f}{unit}/s' if rate else ''}\n")
         else:
@@ -82,4 +87,5 @@ class ProgressBar:
             self.stream.write(f"{self.label}: {done}/{total}{unit}{pct}, {rate:.1f}{unit}/s, "
                               f"about {_duration(left)} left\n")
         self.stream.flush()
+        self._printed = True
         self._finished = finished

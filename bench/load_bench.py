@@ -336,7 +336,12 @@ def run_load(*, clients: int = 20, requests: int = 50, spec: Path = DEMO_SPEC, w
 
 
 def _start_audit(c: httpx.Client, deadline: float) -> str:
-    r = c.post("/api/audits", json=AUDIT_BODY)
+    # Starting reads (and, the first time, generates) every tile to refuse bad input before a job
+    # exists: allow it minutes on a loaded machine, and one retry of a dropped connection.
+    try:
+        r = c.post("/api/audits", json=AUDIT_BODY, timeout=600.0)
+    except httpx.TransportError:
+        r = c.post("/api/audits", json=AUDIT_BODY, timeout=600.0)
     r.raise_for_status()
     job = r.json()["id"]
     while True:  # measure only while the audit explains images, its long phase
@@ -363,17 +368,20 @@ def run_with_audit(*, clients: int = 4, requests: int = 60, spec: Path = DEMO_SP
         # shared machine weighs on both conditions alike.
         half = {**common, "requests": max(1, requests // 2)}
         idle, _, idle_wall = _drive(server, **half, seed=seed)
+        load_start = os.getloadavg()
         with httpx.Client(base_url=server.base, timeout=60.0) as c:
             job = _start_audit(c, time.time() + time_limit)
             before = c.get(f"/api/audits/jobs/{job}").json()["done"]
             busy, _, busy_wall = _drive(server, **common, seed=seed + 1)
             state = c.get(f"/api/audits/jobs/{job}").json()
+            load_busy = os.getloadavg()
             c.post(f"/api/audits/jobs/{job}/cancel")
             while c.get(f"/api/audits/jobs/{job}").json()["state"] not in ("done", "failed", "cancelled"):
                 time.sleep(0.1)
         idle_after, _, wall_after = _drive(server, **half, seed=seed + 2)
         idle.merge(idle_after)
         idle_wall += wall_after
+        load_end = os.getloadavg()
     finally:
         server.stop()
     idle_t, busy_t = _latency_table(idle), _latency_table(busy)
@@ -384,6 +392,7 @@ def run_with_audit(*, clients: int = 4, requests: int = 60, spec: Path = DEMO_SP
         "audit_running": {"latency": busy_t, "wall_seconds": busy_wall, "failures": busy.failures,
                           "server_errors": busy.server_errors, "busy_waits": len(busy.busy_waits),
                           "audit_images_during": state["done"] - before, "audit_state_at_end": state["state"]},
+        "load_average": {"before the audit": load_start, "end of the audit phase": load_busy, "end": load_end},
         "p95_ratio": {k: (busy_t[k]["p95"] / idle_t[k]["p95"]) if idle_t[k]["p95"] and busy_t[k]["p95"] else None
                       for k in idle_t},
         "spec": str(spec.relative_to(REPO) if spec.is_relative_to(REPO) else spec),
@@ -448,7 +457,12 @@ def audit_markdown(fig: dict, *, command: str) -> str:
         ratio = fig["p95_ratio"][kind]
         lines.append(f"| {kind} | {a['n']} | {_ms(a['p50'])} | {_ms(a['p95'])} | {b['n']} | {_ms(b['p50'])} | "
                      f"{_ms(b['p95'])} | {'–' if ratio is None else f'{ratio:.2f}'} |")
+    for failure in (idle["server_errors"] + busy["server_errors"] + idle["failures"] + busy["failures"])[:5]:
+        lines.append(f"\n- {failure[:300]}")
+    loads = "; ".join(f"{k} {' '.join(f'{v:.1f}' for v in three)}" for k, three in fig["load_average"].items())
     lines += [
+        "",
+        f"Load average (1, 5, 15 min) of the machine: {loads}.",
         "",
         f"Failures: idle {len(idle['failures'])}, with audit {len(busy['failures'])}; 5xx: "
         f"{len(idle['server_errors']) + len(busy['server_errors'])}; waits after a 429: idle {idle['busy_waits']}, "

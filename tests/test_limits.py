@@ -72,9 +72,12 @@ def test_least_recently_used_is_evicted_first(web_settings):
             return c.post("/api/images", files={"file": (f"{k}.png", buf.getvalue(), "image/png")}).json()["id"]
 
         a, b = upload(1), upload(2)
-        assert c.get(f"/api/images/{a}").status_code == 200  # a is used again: b is now the oldest use
+        c.post("/api/predict", json={"image": b, "k": 1})  # b is prepared now: its input is cached too
+        assert c.post("/api/predict", json={"image": a, "k": 1}).status_code == 200  # a is used: b is the oldest use
         upload(3)
         assert c.get(f"/api/images/{a}").status_code == 200 and c.get(f"/api/images/{b}").status_code == 404
+        r = c.post("/api/predict", json={"image": b, "k": 1})  # its prepared input went with it
+        assert r.status_code == 404 and "upload it again" in r.json()["detail"]
 
 
 # --- per-job limits ----------------------------------------------------------------------------------

@@ -164,9 +164,10 @@ class Workspace:
     def prepared(self, model: LoadedModel, image_id: str) -> PreparedInput:
         """The image as ``model`` sees it (preprocessed once per model and image)."""
         key = (model.name, model.fingerprint, image_id)
+        image = self.image(image_id)  # also a use of the image: it stays among the recently used
         hit = self._prepared.get(key)
         if hit is None:
-            hit = prepare(model.spec, self.image(image_id))
+            hit = prepare(model.spec, image)
             self._prepared.put(key, hit)
         return hit
 

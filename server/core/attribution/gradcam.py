@@ -50,7 +50,10 @@ def conv_like_layers(model: nn.Module, x: torch.Tensor) -> list[str]:
 
 
 def _listing(model: nn.Module, x: torch.Tensor) -> str:
-    names = conv_like_layers(model, x)
+    try:
+        names = conv_like_layers(model, x)
+    except Exception:  # noqa: BLE001 - the listing is a courtesy; the sentence before it stands alone
+        return "unknown (the model's forward fails on this input)"
     shown = names if len(names) <= 20 else ["…", *names[-20:]]
     return ", ".join(shown) if names else "none (the model has no layer with a 4-D output)"
 
@@ -74,10 +77,13 @@ def default_gradcam_layer(model: nn.Module, x: torch.Tensor) -> str:
         return feature_map_feeding_head(model, x.detach().clone()).name
 
 
-def check_gradcam_layer(model: nn.Module, input_shape: tuple[int, int, int], layer: str | None) -> str:
-    """Refuse, before any work starts, a layer that Grad-CAM cannot use; return the layer it will use.
+def check_gradcam_layer(model: nn.Module, input_shape: tuple[int, int, int], layer: str | None) -> str | None:
+    """Refuse, before any work starts, a named layer that Grad-CAM cannot use; return its name.
 
-    ``input_shape`` is the model's (C, H, W); one forward pass on zeros finds the layer's output shape.
+    ``input_shape`` is the model's (C, H, W); one forward pass on zeros finds the layer's output
+    shape. No layer (the default) needs no check here: the map finds it and reports it. When the
+    model's own forward fails on zeros the layer cannot be checked up front, and the job reports
+    the model's failure instead.
     """
     p = next(model.parameters(), None)
     dtype = p.dtype if p is not None and p.is_floating_point() else torch.float32
@@ -85,7 +91,7 @@ def check_gradcam_layer(model: nn.Module, input_shape: tuple[int, int, int], lay
     if not hookable(model):
         raise _hooks_refused()
     if not layer:
-        return default_gradcam_layer(model, x)
+        return None
     point = parse_layer_point(layer)
     modules = dict(model.named_modules())
     if not point.module or point.module not in modules:
@@ -104,15 +110,20 @@ def check_gradcam_layer(model: nn.Module, input_shape: tuple[int, int, int], lay
     handles = [modules[point.module].register_forward_pre_hook(pre), modules[point.module].register_forward_hook(post)]
     modes = [(m, m.training) for m in model.modules()]
     model.eval()
+    failed = False
     try:
         with torch.inference_mode():
             model(x)
+    except Exception:  # noqa: BLE001 - the model's own failure: left for the job to report in its words
+        failed = True
     finally:
         for h in handles:
             h.remove()
         for m, mode in modes:
             m.training = mode
     got = shapes.get(point.where)
+    if got is None and failed:
+        return point.name
     if got is None:
         raise _layer_error(model, x, f"layer {point.module!r} does not run in the forward pass")
     if not isinstance(got, tuple) or len(got) != 4:

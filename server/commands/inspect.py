@@ -174,6 +174,20 @@ def _write_views(args: argparse.Namespace, out: Path) -> int:
         (out / name).write_bytes(data)
         written[name.rsplit(".", 1)[0]] = name
 
+    arrays: dict[str, dict[str, Any]] = {}
+
+    def save_array(name: str, values: Any, meaning: str) -> None:
+        """A map's numbers as float32 .npy (numpy's own format), so results can be re-checked."""
+        import io
+
+        import numpy as np
+
+        buf = io.BytesIO()
+        data = np.ascontiguousarray(values, dtype=np.float32)
+        np.save(buf, data, allow_pickle=False)
+        save(name, buf.getvalue())
+        arrays[name] = {"shape": list(data.shape), "dtype": "float32", "meaning": meaning}
+
     def save_picture(name: str, image: Any, scaling: str) -> None:
         """An input-sized picture, enlarged ×factor by pixel repetition; result.json says how."""
         big = render.upscale_nearest(image, factor)
@@ -257,6 +271,11 @@ def _write_views(args: argparse.Namespace, out: Path) -> int:
                      range_text)
         save("occlusion_colorbar.png", render.colorbar_png(
             vmin=lo, vmax=hi, cmap=render.SIGNED_CMAP, label=f"drop in p({model.labels[explained]})"))
+        save_array("occlusion.npy", occ.drop, "drop in the target's score per input pixel: the mean of the grid over "
+                   "every patch position covering the pixel")
+        save_array("occlusion_grid.npy", occ.grid, "drop in the target's score per patch position (rows: patch tops "
+                   f"{occ.tops.tolist()}, columns: patch lefts {occ.lefts.tolist()}, patch {occ.patch} px)"
+                   + ("; approximate: positions not evaluated are interpolated" if occ.approximate else ""))
         maps["occlusion"] = {**occ.parameters(), "wall_seconds": time.perf_counter() - t0,
                              "label": model.labels[explained]}
         computed["occlusion"] = occ.drop
@@ -273,6 +292,8 @@ def _write_views(args: argparse.Namespace, out: Path) -> int:
         save_picture(f"{name}_overlay.png", render.overlay(prepared.display, amap.map, cmap=cmap, vmin=lo, vmax=hi),
                      range_text + ", blended over the input")
         save_picture(f"{name}_map.png", render.colorize(amap.map, cmap=cmap, vmin=lo, vmax=hi), range_text)
+        save_array(f"{name}.npy", amap.map,
+                   f"{name} attribution per input pixel ({'signed' if amap.signed else 'magnitude'})")
         maps[name] = amap.summary()
         computed[name] = amap.map
         if amap.warning:
@@ -297,12 +318,13 @@ def _write_views(args: argparse.Namespace, out: Path) -> int:
         for name in args.method:
             check = sanity_check(name, model.module, x, target=explained, params=params.get(name),
                                  output_kind=model.output_kind, normalization=norm,
-                                 progress=ProgressBar(f"sanity {name}", quiet=args.quiet))
+                                 progress=ProgressBar(f"sanity {name}", unit="maps", quiet=args.quiet))
             save(f"sanity_{name}.png", sanity_png(check))
             checks[name] = check.to_dict()
             print(f"sanity check {name}: {check.verdict} — {check.reason}")
         result["sanity"] = checks
     result["files"] = written
+    result["arrays"] = arrays
     result["pictures"] = pictures
     (out / "result.json").write_text(json.dumps(result, indent=2, default=_json_default) + "\n", encoding="utf-8")
 

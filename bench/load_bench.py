@@ -243,8 +243,9 @@ def _pct(values: list[float], q: float) -> float | None:
 
 def _drive(server: Server, *, clients: int, requests: int, mix: dict[str, float], ids: list[str],
            pool: list[tuple[str, bytes]], layer: str, model: str, time_limit: float, seed: int, engine: str,
-           early: int = 50) -> tuple[Tally, dict[str, int], float]:
-    """``clients`` threads × ``requests`` requests drawn from ``mix``; returns the tally, RSS marks, wall time."""
+           early: int = 50, think: float = 0.0) -> tuple[Tally, dict[str, int], float]:
+    """``clients`` threads × ``requests`` requests drawn from ``mix``, each client pausing a random
+    0…2·``think`` seconds between requests; returns the tally, RSS marks, wall time."""
     kinds, weights = tuple(mix), tuple(mix.values())
     tally = Tally(kinds=kinds)
     marks: dict[str, int] = {}
@@ -260,6 +261,8 @@ def _drive(server: Server, *, clients: int, requests: int, mix: dict[str, float]
                         tally.failures.append(f"client {k} stopped at the deadline")
                     return
                 kind = rng.choices(kinds, weights)[0]
+                if think > 0:
+                    time.sleep(rng.uniform(0.0, 2.0 * think))
                 t0 = time.perf_counter()
                 try:
                     latency = _one(client, kind, rng, ids, pool, layer, model, tally, deadline, engine)
@@ -354,14 +357,14 @@ def _start_audit(c: httpx.Client, deadline: float) -> str:
 
 
 def run_with_audit(*, clients: int = 4, requests: int = 60, spec: Path = DEMO_SPEC, workdir: Path,
-                   images: int = 16, time_limit: float = 300.0, seed: int = 0) -> dict:
+                   images: int = 16, time_limit: float = 300.0, seed: int = 0, think: float = 0.25) -> dict:
     """The interactive mix idle, then while an audit runs, on one server (see the module docstring)."""
     workdir.mkdir(parents=True, exist_ok=True)
     server = start_server(spec, workdir)
     try:
         model, layer, ids, pool = _setup(server, spec, images)
         common = {"clients": clients, "requests": requests, "mix": AUDIT_MIX, "ids": ids, "pool": pool,
-                  "layer": layer, "model": model, "time_limit": time_limit, "engine": DEFAULT_ENGINE}
+                  "layer": layer, "model": model, "time_limit": time_limit, "engine": DEFAULT_ENGINE, "think": think}
         # A short warm-up (first forwards, first pages) so that neither phase pays it.
         _drive(server, **{**common, "requests": 5}, seed=seed + 99)
         # Idle before and after the audit (half the requests each), so drifting load from elsewhere on a
@@ -386,7 +389,7 @@ def run_with_audit(*, clients: int = 4, requests: int = 60, spec: Path = DEMO_SP
         server.stop()
     idle_t, busy_t = _latency_table(idle), _latency_table(busy)
     return {
-        "clients": clients, "requests_per_client": requests, "mix": AUDIT_MIX, "audit": AUDIT_BODY,
+        "clients": clients, "requests_per_client": requests, "mix": AUDIT_MIX, "audit": AUDIT_BODY, "think": think,
         "idle": {"latency": idle_t, "wall_seconds": idle_wall, "failures": idle.failures,
                  "server_errors": idle.server_errors, "busy_waits": len(idle.busy_waits)},
         "audit_running": {"latency": busy_t, "wall_seconds": busy_wall, "failures": busy.failures,
@@ -442,7 +445,8 @@ def audit_markdown(fig: dict, *, command: str) -> str:
         "",
         f"Command: `{command}`  ",
         (f"Model: `{fig['spec']}`; {fig['clients']} concurrent clients × {fig['requests_per_client']} requests per "
-         f"condition on {os.cpu_count()} CPU cores, shared with other work; mix {fig['mix']}. Idle: half the "
+         f"condition on {os.cpu_count()} CPU cores, shared with other work; mix {fig['mix']}; each client pauses "
+         f"0–{2 * fig['think']:.1f} s between requests (a person reading the page). Idle: half the "
          f"requests before the audit and half after it; then while an audit of "
          f"{4 * fig['audit']['source']['per_class']} demo tiles with {fig['audit']['method']} "
          f"{fig['audit']['params']} runs in the background ({busy['audit_images_during']} images audited during "
@@ -482,6 +486,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--engine", default=DEFAULT_ENGINE, help="occlusion engine of the jobs (default auto)")
     parser.add_argument("--audit", action="store_true",
                         help="measure the interactive mix idle and while an audit runs in the background")
+    parser.add_argument("--think", type=float, default=0.25,
+                        help="with --audit: mean pause of a client between requests, in seconds (default 0.25)")
     args = parser.parse_args(argv)
     import tempfile
 
@@ -489,9 +495,9 @@ def main(argv: list[str] | None = None) -> int:
         if args.audit:
             clients, requests = args.clients or 4, args.requests or 60
             fig = run_with_audit(clients=clients, requests=requests, time_limit=args.time_limit,
-                                 workdir=args.workdir or Path(tmp))
+                                 workdir=args.workdir or Path(tmp), think=args.think)
             command = (f"PYTHONPATH=. .venv/bin/python -m bench.load_bench --audit --clients {clients} "
-                       f"--requests {requests}")
+                       f"--requests {requests} --think {args.think}")
             text, out = audit_markdown(fig, command=command), args.out or RESULTS_AUDIT
             ok = not (fig["idle"]["failures"] or fig["audit_running"]["failures"] or fig["idle"]["server_errors"]
                       or fig["audit_running"]["server_errors"])

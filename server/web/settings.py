@@ -31,9 +31,10 @@ class Settings:
     max_queued_audits: int = 4
     max_jobs_per_client: int = 8  # interactive jobs one client may have queued or running
     max_cached_results: int = 128
-    max_images: int = 64
-    # Decoded pixels held for uploaded and opened images, in bytes (least recently used evicted first).
+    # Decoded pixels held for uploaded and opened images, in bytes (least recently used evicted first);
+    # the count is only a sanity bound on the list the pages show.
     max_image_memory: int = 512 * MiB
+    max_images: int = 1024
     max_prepared_memory: int = 256 * MiB
     # Any request body other than an image upload (JSON), in bytes; larger bodies get 413.
     max_body_bytes: int = 2 * MiB

@@ -39,7 +39,7 @@ import torch
 from torch import nn
 
 from pellucid.core.errors import ModelLoadError, ModelOutputError, PellucidError
-from pellucid.core.model.formats import check_kind
+from pellucid.core.model.formats import PICKLED_MODULE, STATE_DICT, TORCH_LEGACY, check_kind, sniff
 from pellucid.core.model.spec import ModelSpec
 
 # Unpickling a full module executes arbitrary code from the file; only an explicit flag allows it.
@@ -229,7 +229,8 @@ def read_state_dict(path: Path) -> dict[str, torch.Tensor]:
             return load_file(str(path), device="cpu")
         data = torch.load(str(path), map_location="cpu", weights_only=True)
     except Exception as exc:  # noqa: BLE001 - any decoder failure means the same thing to the user
-        if "Weights only load failed" in str(exc):  # torch's own advice here is how to lift the safety
+        pickle_file = sniff(path) in (STATE_DICT, TORCH_LEGACY, PICKLED_MODULE)
+        if pickle_file and "Weights only load failed" in str(exc):  # torch's advice: how to lift the safety
             raise ModelLoadError(
                 f"{str(path)!r} holds Python objects besides tensors (a whole pickled model?), and Pellucid reads "
                 "weights files without running code from them. Save model.state_dict() instead, or, for a model "

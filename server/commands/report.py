@@ -10,10 +10,11 @@ def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser(
         "report",
         help="write a stored audit run as a self-contained HTML report and a PDF",
-        description="Write report.html (pictures inline, no external files) and report.pdf for one stored audit "
-                    "run: model spec, card and fingerprint, dataset, settings, every measure, figures, flagged "
-                    "images, the injection test, the gate's verdict when a policy is given, and the command that "
-                    "re-runs it.",
+        description="Write report.html (pictures inline, no external files) and report.pdf (the same document "
+                    "printed) for one stored audit run: a summary page with the verdict, the numbers that decided "
+                    "it and the most suspicious clusters or flagged images; the evidence; an empty sign-off block "
+                    "for the reviewer; and an appendix with settings, spec, fingerprints, versions and the command "
+                    "that re-runs it.",
     )
     p.add_argument("run", help="run id (or a unique prefix); 'pellucid runs list' shows them")
     p.add_argument("--out", type=Path, required=True, metavar="DIR", help="folder to write the report into")
@@ -23,6 +24,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--store", type=Path, default=None, metavar="DIR",
                    help="data folder (default: $PELLUCID_DATA or ./.pellucid)")
     p.add_argument("--no-pdf", dest="pdf", action="store_false", help="write the HTML report only")
+    p.add_argument("--paper", choices=("a4", "letter"), default="a4",
+                   help="page size of the PDF (and of the HTML when printed): a4 (default) or letter")
     p.set_defaults(func=_report)
 
 
@@ -36,7 +39,7 @@ def _report(args: argparse.Namespace) -> int:
         raise BadParameterError(f"--out {str(args.out)!r} exists and is not a folder")
     policy = load_policy(args.policy) if args.policy else None
     with Store(args.store or default_data_dir()) as store:
-        files = write_report(store, args.run, args.out, policy=policy, pdf=args.pdf)
+        files = write_report(store, args.run, args.out, policy=policy, pdf=args.pdf, paper=args.paper)
         run = store.get_run(args.run)
     for f in files:
         print(f"wrote {f}")

@@ -10,6 +10,7 @@
     ├── BadParameterError         a parameter outside its allowed range
     ├── DataError                 an image folder or manifest that cannot be audited
     ├── StoreError                the data folder or its database cannot be used
+    ├── ReportError               a report that cannot be printed (the PDF engine or its system libraries)
     ├── NotFoundError             an image, job or run id that this server or store does not hold
     ├── ConflictError             a request that clashes with the state of a run or job (resume twice)
     ├── BusyError                 a queue or a per-client limit is full; try again after ``retry_after`` s
@@ -59,6 +60,10 @@ class DataError(PellucidError):
 
 
 class StoreError(PellucidError):
+    pass
+
+
+class ReportError(PellucidError):
     pass
 
 

@@ -23,6 +23,7 @@ _STATUS: list[tuple[type[E.PellucidError], int]] = [
     (E.ModelOutputError, 422),
     (E.DataError, 422),
     (E.StoreError, 503),
+    (E.ReportError, 503),
     (E.NotFoundError, 404),
     (E.ConflictError, 409),
     (E.BusyError, 429),

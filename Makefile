@@ -7,7 +7,7 @@ VENV   ?= .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: setup serve test test-fast browser bench bench-startup lint clean
+.PHONY: setup serve test test-fast browser pdf-deps bench bench-startup lint clean
 
 $(STAMP): pyproject.toml constraints.txt
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -17,7 +17,7 @@ $(STAMP): pyproject.toml constraints.txt
 
 setup: $(STAMP)
 
-serve: setup
+serve: setup pdf-deps
 	$(VENV)/bin/pellucid serve
 
 # Debian's chromium drives the browser tests; nothing is downloaded by Playwright itself.
@@ -27,10 +27,25 @@ browser:
 	  SUDO=$$( [ "$$(id -u)" = 0 ] || echo sudo ); \
 	  $$SUDO apt-get update -qq && $$SUDO apt-get install -y -qq chromium >/dev/null; }
 
-test: setup browser
+# The report's PDF is printed by WeasyPrint, which draws text with Debian's Pango, HarfBuzz and
+# fonts; the PDF tests turn pages into pictures with poppler-utils' pdftoppm. Installed when missing.
+PDF_DEBS := libpango-1.0-0 libpangoft2-1.0-0 libharfbuzz0b libharfbuzz-subset0 libfontconfig1 fonts-dejavu-core poppler-utils
+pdf-deps:
+	@if ! command -v dpkg-query >/dev/null; then \
+	  echo "not a Debian system: install Pango, HarfBuzz, a font and poppler with its package manager for PDF reports"; \
+	else \
+	  missing=$$(for p in $(PDF_DEBS); do dpkg-query -W -f='$${Status}\n' $$p 2>/dev/null | grep -q 'ok installed' || echo $$p; done); \
+	  if [ -n "$$missing" ]; then \
+	    echo "installing Debian's" $$missing "for the report's PDF"; \
+	    SUDO=$$( [ "$$(id -u)" = 0 ] || echo sudo ); \
+	    $$SUDO apt-get update -qq && $$SUDO apt-get install -y -qq $$missing >/dev/null; \
+	  fi; \
+	fi
+
+test: setup browser pdf-deps
 	$(PY) -m pytest
 
-test-fast: setup
+test-fast: setup pdf-deps
 	$(PY) -m pytest -m "not browser and not slow"
 
 bench: setup

@@ -597,6 +597,72 @@ def test_rise_finds_the_only_region_that_matters():
     assert amap.map[:8, :8].mean() > amap.map[8:, 8:].mean() + 0.05
 
 
+class _Corner(nn.Module):
+    """Only the top-left quarter of a 16×16 input matters to class 0."""
+
+    def forward(self, x):
+        s = x[:, :, :8, :8].mean(dim=(1, 2, 3)) * 6 - 3
+        return torch.stack([s, -s], dim=1)
+
+
+class _Ramp(nn.Module):
+    """Class 0's score grows with the columns: each column matters more than the one to its left."""
+
+    def forward(self, x):
+        ramp = torch.linspace(0, 1, x.shape[-1]).view(1, 1, 1, -1)
+        s = (x * ramp).mean(dim=(1, 2, 3)) * 8 - 2
+        return torch.stack([s, -s], dim=1)
+
+
+def test_rise_stops_when_two_halves_agree_and_reports_it():
+    # Source: Petsiuk, Das, Saenko, BMVC 2018 — saliency = (1/(p·N)) Σ f(I ⊙ Mᵢ) Mᵢ. The masks are
+    # regenerated here from the documented draw order (all grids, then all shifts, one seeded
+    # generator); the halves (even and odd draws), their centred sums and their Spearman
+    # correlation are computed here with scipy, independently of the method's own bookkeeping.
+    from scipy.stats import spearmanr
+
+    from pellucid.core.attribution.rise import CHECK_EVERY, MIN_MASKS
+
+    x = torch.ones(1, 3, 16, 16)
+    cap, seed, s, p = 4000, 5, 7, 0.5
+    amap = compute_attribution("rise", _Ramp(), x, target=0, params={"masks": cap, "seed": seed})
+    used = amap.extras["masks_used"]
+    assert amap.extras["converged"] and used < cap
+    assert (used - MIN_MASKS) % CHECK_EVERY == 0  # checks at 256, 384, …: independent of the batch size
+    gen = torch.Generator().manual_seed(seed)
+    cells = (torch.rand((cap, s, s), generator=gen) < p).float()
+    shifts = torch.stack([torch.randint(0, 3, (cap,), generator=gen), torch.randint(0, 3, (cap,), generator=gen)], 1)
+
+    def halves(n):
+        masks = rise_masks(n, s, p, (16, 16), gen, cells=cells[:n], shifts=shifts[:n])[:, 0].double()
+        with torch.no_grad():
+            f = torch.softmax(_Ramp()(x * masks.unsqueeze(1).float()).double(), 1)[:, 0]
+        fbar = f.mean()
+        parts = [((f[k::2] - fbar).view(-1, 1, 1) * masks[k::2]).sum(0) for k in (0, 1)]
+        return f, masks, parts
+
+    f, masks, (a, b) = halves(used)
+    rho = spearmanr(a.flatten().numpy(), b.flatten().numpy()).statistic
+    assert amap.extras["halves_spearman"] == pytest.approx(rho, abs=1e-9) and rho >= 0.95
+    if used > MIN_MASKS:  # the check before did not yet agree, so it stopped at the first chance
+        _, _, (a0, b0) = halves(used - CHECK_EVERY)
+        assert spearmanr(a0.flatten().numpy(), b0.flatten().numpy()).statistic < 0.95
+    assert [h["masks"] for h in amap.extras["agreement_history"]][-1] == used
+    # the map: the centred sum / (p·N) plus the mean score, which has the paper's expectation
+    centred = ((f - f.mean()).view(-1, 1, 1) * masks).sum(0) / (p * used) + f.mean()
+    np.testing.assert_allclose(amap.map, centred.numpy(), rtol=1e-5, atol=1e-6)
+    paper = (f.view(-1, 1, 1) * masks).sum(0) / (p * used)
+    assert spearmanr(paper.flatten().numpy(), centred.flatten().numpy()).statistic > 0.9
+    assert amap.map[:, 12:].mean() > amap.map[:, :4].mean()  # the right columns matter most
+
+
+def test_rise_without_agreement_draws_every_mask_and_warns():
+    x = torch.ones(1, 3, 16, 16)
+    amap = compute_attribution("rise", _Corner(), x, target=0, params={"masks": 300, "agreement": 1.0})
+    assert amap.extras["masks_used"] == 300 and not amap.extras["converged"]
+    assert "raise 'masks'" in amap.warning
+
+
 def test_occlusion_wrapper_matches_the_occlusion_module(cnn, image):
     from pellucid.core.occlusion.engine import occlusion_map
 

@@ -507,13 +507,14 @@ def compare(first: str, second: str, store: Store = Depends(get_store)) -> dict:
     return compare_runs(store, first, second)
 
 
-def _report_file(store: Store, run_id: str, kind: str, settings: Settings) -> Response:
+def _report_file(store: Store, run_id: str, kind: str, settings: Settings, paper: str = "a4") -> Response:
     from pellucid.core.audit.report import write_report
 
     run = store.get_run(run_id)
     require_pictures(run, settings)  # a report carries the run's pictures
+    # The same files as `pellucid report RUN --paper …`: the PDF is the HTML printed.
     with tempfile.TemporaryDirectory(prefix="pellucid-report-") as tmp:
-        files = write_report(store, run.id, tmp, pdf=(kind == "pdf"))
+        files = write_report(store, run.id, tmp, pdf=(kind == "pdf"), paper=paper)
         data = files[-1].read_bytes()
     media = "text/html; charset=utf-8" if kind == "html" else "application/pdf"
     stamp = time.strftime("%Y%m%d", time.gmtime())
@@ -522,15 +523,15 @@ def _report_file(store: Store, run_id: str, kind: str, settings: Settings) -> Re
 
 
 @api.get("/runs/{run_id}/report.html", summary="Download the run's self-contained HTML report")
-def report_html(run_id: str, store: Store = Depends(get_store), settings: Settings = Depends(get_settings)
-                ) -> Response:
-    return _report_file(store, run_id, "html", settings)
+def report_html(run_id: str, paper: Literal["a4", "letter"] = "a4", store: Store = Depends(get_store),
+                settings: Settings = Depends(get_settings)) -> Response:
+    return _report_file(store, run_id, "html", settings, paper)
 
 
 @api.get("/runs/{run_id}/report.pdf", summary="Download the run's PDF report")
-def report_pdf(run_id: str, store: Store = Depends(get_store), settings: Settings = Depends(get_settings)
-               ) -> Response:
-    return _report_file(store, run_id, "pdf", settings)
+def report_pdf(run_id: str, paper: Literal["a4", "letter"] = "a4", store: Store = Depends(get_store),
+               settings: Settings = Depends(get_settings)) -> Response:
+    return _report_file(store, run_id, "pdf", settings, paper)
 
 
 @pages.get("/audits", response_class=HTMLResponse)

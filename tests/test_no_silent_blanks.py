@@ -210,8 +210,14 @@ def test_cli_offers_logit_and_refuses_the_head(specs, picture, tmp_path, capsys)
                  "--param", "occlusion.stride=4"])
     assert code == 0, capsys.readouterr().err
     doc = json.loads((tmp_path / "a" / "result.json").read_text())
-    assert doc["attribution"]["occlusion"]["params"]["output"] == "logit"
+    assert doc["attribution"]["occlusion"]["output"] == "logit" and "warning" not in doc["attribution"]["occlusion"]
     capsys.readouterr()
+    code = main(["inspect", str(picture), "--model", str(specs["saturated"]), "--out", str(tmp_path / "p"),
+                 "--param", "occlusion.patch=4", "--param", "occlusion.stride=4", "--quiet"])
+    out = capsys.readouterr().out
+    assert code == 0 and 'use output = "logit"' in out
+    doc = json.loads((tmp_path / "p" / "result.json").read_text())
+    assert 'output = "logit"' in doc["attribution"]["occlusion"]["warning"]
     code = main(["inspect", str(picture), "--model", str(specs["saturated"]), "--out", str(tmp_path / "b"),
                  "--method", "gradcam", "--param", "gradcam.layer=head"])
     err = capsys.readouterr().err.strip()

@@ -279,9 +279,17 @@ def _write_views(args: argparse.Namespace, out: Path) -> int:
         maps["occlusion"] = {**occ.parameters(), "wall_seconds": time.perf_counter() - t0,
                              "label": model.labels[explained]}
         computed["occlusion"] = occ.drop
+        from pellucid.core.attribution.occlusion import saturation_warning
+
+        saturated = saturation_warning(float(occ.base_score), occ.grid, output=occ.output)
+        if saturated:  # a flat map from a saturated probability says so, with the logit suggestion
+            maps["occlusion"]["warning"] = saturated
+            print(f"warning (occlusion): {saturated}")
 
     norm = Normalization(mean=model.spec.preprocess.mean, std=model.spec.preprocess.std)
     for name in args.method:
+        if name == "occlusion" and occlusion is not None:
+            continue  # the occlusion view above ran it, with the --param occlusion.* settings
         amap = compute_attribution(name, model.module, x, target=explained, params=params.get(name),
                                    output_kind=model.output_kind, normalization=norm,
                                    progress=ProgressBar(name, quiet=args.quiet))

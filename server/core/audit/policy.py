@@ -20,6 +20,7 @@ a check. Example::
     max_injection_shift = 0.2      # run: mean rise of the suspect class's probability after pasting
     max_background_swap_drop = 0.1 # run: accuracy lost when the background is replaced
     max_failed_images = 0          # run: images that could not be read or audited
+    max_confirmed_shortcuts = 0    # run: clusters confirmed as shortcuts (0 when not set and confirmation ran)
 
     [classes.crack]                # per-class overrides of the class thresholds
     max_corner_share = 0.15
@@ -49,7 +50,7 @@ import hashlib
 import math
 import time
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -96,7 +97,13 @@ THRESHOLDS: dict[str, tuple[str, str, str, str]] = {
     "max_background_swap_drop": ("run", "signed", "<=",
                                  "accuracy lost when each object's background is replaced by another image's"),
     "max_failed_images": ("run", "count", "<=", "images that could not be read or audited"),
+    "max_confirmed_shortcuts": ("run", "count", "<=",
+                                ("clusters of maps that discovery found and confirmation confirmed: taking their "
+                                 "evidence region away loses the calls, and putting it into other images flips them")),
 }
+# Checked at this limit when a policy does not set it and the audit ran confirmation (the default
+# audit does): a policy written before discovery existed still fails a confirmed shortcut.
+DEFAULT_MAX_CONFIRMED_SHORTCUTS = 0.0
 CLASS_THRESHOLDS = tuple(k for k, v in THRESHOLDS.items() if v[0] == "class")
 RUN_THRESHOLDS = tuple(k for k, v in THRESHOLDS.items() if v[0] == "run")
 _TOP_KEYS = {"name", "description", "thresholds", "classes", "injection", "audit"}
@@ -425,6 +432,16 @@ def _run_check(key: str, summary: dict, threshold: float) -> Check:
         return _judge(key, "run", inj.get("mean_shift"), threshold,
                       what=(f"the mean change of p({inj['settings']['suspect_class']}) after pasting the patch, over "
                             f"{inj.get('tested', 0)} tested image(s)"))
+    if key == "max_confirmed_shortcuts":
+        conf = summary.get("confirmation")
+        if not conf:
+            return _judge(key, "run", None, threshold, what="",
+                          missing="the audit ran no confirmation (it runs by default; this run turned it off)")
+        names = conf.get("confirmed_clusters") or []
+        listed = f" ({', '.join(names)})" if names else ""
+        return _judge(key, "run", float(conf.get("confirmed", 0)), threshold,
+                      what=f"the number of confirmed shortcuts among {len(conf.get('tested', []))} tested cluster(s)"
+                           f"{listed}", detail={"clusters": names})
     if key == "max_background_swap_drop":
         swap = summary.get("background_swap")
         if not swap:
@@ -447,6 +464,11 @@ def evaluate_policy(policy: Policy, summary: dict, *, labels: list[str]) -> Poli
     for key in RUN_THRESHOLDS:
         if key in policy.thresholds:
             checks.append(_run_check(key, summary, policy.thresholds[key]))
+        elif key == "max_confirmed_shortcuts" and summary.get("confirmation"):
+            check = _run_check(key, summary, DEFAULT_MAX_CONFIRMED_SHORTCUTS)
+            checks.append(replace(check, sentence=check.sentence.replace(
+                "the policy allows", "the policy does not set it, so the default allows"),
+                detail={**check.detail, "default": True}))
     per_class = summary.get("per_class", {})
     for label in labels:
         if label not in per_class:

@@ -6,7 +6,9 @@ Phases (each reports progress on its own; ``on_phase`` hears the phase names):
    shard, and stored as it arrives (one transaction per image);
 2. ``summary``: accuracy, confusion matrix, region shares, flags and per-class mean maps from
    the stored results;
-3. ``injection`` and ``background swap`` when asked for, and the ``gallery`` when a layer is given.
+3. ``discovery`` (clusters of each class's maps) and ``confirmation`` (removal and transplant of
+   the most suspicious clusters' evidence), on by default (:mod:`pellucid.core.audit.discovery_phase`);
+4. ``injection`` and ``background swap`` when asked for, and the ``gallery`` when a layer is given.
 
 A rerun with the same model fingerprint, dataset hash and settings picks up an interrupted,
 cancelled or failed run and computes only what is missing.
@@ -25,6 +27,7 @@ from pellucid.core.attribution import get_method
 from pellucid.core.audit.aggregate import class_mean_maps, summarise
 from pellucid.core.audit.caution import CAUTION as AUDIT_CAUTION
 from pellucid.core.audit.dataset import Dataset
+from pellucid.core.audit.discovery_phase import run_confirmation, run_discovery
 from pellucid.core.audit.engine import run_shards
 from pellucid.core.audit.gallery import channel_gallery
 from pellucid.core.audit.injection import background_swap_test, injection_test
@@ -254,6 +257,22 @@ def run_audit(
         phase("pictures")
         artefacts.update(_flagged_pictures(model, store, rows, summary, items, progress=progress, cancel=cancel))
 
+        phase_seconds: dict[str, float] = {}
+        if settings.discovery is not None:
+            phase("discovery")
+            t_phase = time.perf_counter()
+            discovery, found = run_discovery(model, store, rows, items, settings, progress=progress, cancel=cancel)
+            artefacts.update(found)
+            phase_seconds["discovery_seconds"] = time.perf_counter() - t_phase
+            if settings.confirmation is not None:
+                phase("confirmation")
+                t_phase = time.perf_counter()
+                summary["confirmation"], tested = run_confirmation(
+                    model, store, rows, items, discovery, settings, progress=progress, cancel=cancel)
+                artefacts.update(tested)
+                phase_seconds["confirmation_seconds"] = time.perf_counter() - t_phase
+            summary["discovery"] = discovery.to_dict()
+
         if injection is not None:
             phase("injection")
             res = injection_test(model, items, injection, progress=progress, cancel=cancel)
@@ -286,7 +305,7 @@ def run_audit(
         summary["timing"] = {
             "images_computed": computed, "images_reused": reused, "image_seconds": image_seconds,
             "images_per_second": (computed / image_seconds) if computed and image_seconds > 0 else None,
-            "engine": engine, "workers": workers,
+            "engine": engine, "workers": workers, **phase_seconds,
         }
         summary["caution"] = CAUTION
         store.set_summary(run.id, summary, artefacts=artefacts)

@@ -16,9 +16,88 @@ import numpy as np
 from pellucid.core.audit.measures import RegionLayout
 from pellucid.core.errors import BadParameterError
 
-__all__ = ["TARGETS", "AuditSettings", "GallerySpec", "InjectionSpec"]
+__all__ = ["DEFAULT_METHOD", "TARGETS", "AuditSettings", "ConfirmSettings", "DiscoverySettings", "GallerySpec",
+           "InjectionSpec", "default_method"]
 
 TARGETS = ("label", "predicted")
+# The default audit: Grad-CAM at the feature map that feeds the head, then discovery and
+# confirmation (chosen from `pellucid bench shortcuts`, see BENCHMARKS.md); models that allow no
+# forward hooks (TorchScript) get occlusion with the default geometry instead.
+DEFAULT_METHOD = "gradcam"
+FALLBACK_METHOD = "occlusion"
+
+
+def default_method(*, supports_hooks: bool) -> str:
+    """The method an audit uses when none is asked for."""
+    return DEFAULT_METHOD if supports_hooks else FALLBACK_METHOD
+
+
+def _whole(owner: str, name: str, value: Any, lo: int, hi: int) -> None:
+    if isinstance(value, bool) or not isinstance(value, int) or not lo <= value <= hi:
+        raise BadParameterError(f"{owner} {name} must be a whole number from {lo} to {hi}; received {value!r}")
+
+
+@dataclass(frozen=True)
+class DiscoverySettings:
+    """How each class's maps are grouped (see :mod:`pellucid.core.audit.discovery`); our own defaults."""
+
+    grid: int = 16  # side of the downsized maps
+    max_clusters: int = 6  # the eigengap picks 1 … this many clusters per class
+    neighbour: int = 7  # local scale: distance to this nearest neighbour (Zelnik-Manor & Perona 2004)
+    max_images: int = 1500  # per class; beyond it an even sample of the class is clustered
+    min_images: int = 6  # a class with fewer maps is one group, not clustered
+
+    def validated(self) -> DiscoverySettings:
+        for name, lo, hi in (("grid", 2, 64), ("max_clusters", 1, 20), ("neighbour", 1, 50),
+                             ("max_images", 10, 20000), ("min_images", 3, 1000)):
+            _whole("discovery", name, getattr(self, name), lo, hi)
+        return self
+
+    def to_dict(self) -> dict:
+        return {"grid": self.grid, "max_clusters": self.max_clusters, "neighbour": self.neighbour,
+                "max_images": self.max_images, "min_images": self.min_images}
+
+    @classmethod
+    def from_dict(cls, data: dict) -> DiscoverySettings:
+        return cls(**{k: data[k] for k in cls().to_dict() if k in data})
+
+
+@dataclass(frozen=True)
+class ConfirmSettings:
+    """Which clusters confirmation tests and what counts as a large effect (our own defaults).
+
+    A cluster is tested when its suspicion is at least ``min_suspicion`` and it holds at least
+    ``min_size`` images; at most ``max_clusters`` of the run, most suspicious first. "Confirmed
+    shortcut" needs both: taking the region away loses at least ``min_calls_lost`` of the
+    cluster's calls of the class (images predicted as it), and putting the region into the other
+    classes' images flips at least ``min_transplant_flips`` of them to it, net of the control.
+    """
+
+    min_suspicion: float = 0.3
+    max_clusters: int = 6
+    min_size: int = 3
+    min_calls_lost: float = 0.5
+    min_transplant_flips: float = 0.3
+    region_mass: float = 0.5  # the region: the fewest pixels holding this share of the evidence
+    limit: int = 200  # images per test
+
+    def validated(self) -> ConfirmSettings:
+        for name in ("min_suspicion", "min_calls_lost", "min_transplant_flips", "region_mass"):
+            _fraction(f"confirmation {name}", getattr(self, name))
+        for name, hi in (("max_clusters", 50), ("min_size", 10_000), ("limit", 100_000)):
+            _whole("confirmation", name, getattr(self, name), 1, hi)
+        if self.region_mass <= 0:
+            raise BadParameterError("confirmation region_mass must be above 0")
+        return self
+
+    def to_dict(self) -> dict:
+        return {"min_suspicion": self.min_suspicion, "max_clusters": self.max_clusters, "min_size": self.min_size,
+                "min_calls_lost": self.min_calls_lost, "min_transplant_flips": self.min_transplant_flips,
+                "region_mass": self.region_mass, "limit": self.limit}
+
+    @classmethod
+    def from_dict(cls, data: dict) -> ConfirmSettings:
+        return cls(**{k: data[k] for k in cls().to_dict() if k in data})
 
 
 def _fraction(name: str, value: Any, *, lo: float = 0.0, hi: float = 1.0) -> float:
@@ -40,7 +119,7 @@ class AuditSettings:
     lies outside the object (one half by default).
     """
 
-    method: str = "gradcam"
+    method: str = DEFAULT_METHOD
     params: dict = field(default_factory=dict)
     target: str = "label"
     regions: RegionLayout = field(default_factory=RegionLayout)
@@ -49,6 +128,9 @@ class AuditSettings:
     flag_outside: float = 0.5
     shard_size: int = 8
     threads: int = 1
+    discovery: DiscoverySettings | None = field(default_factory=DiscoverySettings)
+    confirmation: ConfirmSettings | None = field(default_factory=ConfirmSettings)
+    channel_layer: str | None = None  # layer whose channels are ranked per cluster; None: Grad-CAM's default
 
     def validated(self) -> AuditSettings:
         from pellucid.core.attribution import get_method  # here, so reading stored settings needs no torch
@@ -68,6 +150,15 @@ class AuditSettings:
         for name, value, hi in (("shard_size", self.shard_size, 4096), ("threads", self.threads, 256)):
             if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= hi:
                 raise BadParameterError(f"{name} must be a whole number from 1 to {hi}; received {value!r}")
+        if self.discovery is not None:
+            self.discovery.validated()
+        if self.confirmation is not None:
+            if self.discovery is None:
+                raise BadParameterError("confirmation tests the clusters that discovery finds; turn discovery on, "
+                                        "or confirmation off")
+            self.confirmation.validated()
+        if self.channel_layer is not None and (not isinstance(self.channel_layer, str) or not self.channel_layer):
+            raise BadParameterError(f"the channel layer must be a layer name; received {self.channel_layer!r}")
         return replace(self, params=dict(params),
                        tolerance=None if self.tolerance is None else float(self.tolerance),
                        flag_concentration=float(self.flag_concentration), flag_outside=float(self.flag_outside))
@@ -83,6 +174,9 @@ class AuditSettings:
             "flag_outside": self.flag_outside,
             "shard_size": self.shard_size,
             "threads": self.threads,
+            "discovery": self.discovery.to_dict() if self.discovery is not None else None,
+            "confirmation": self.confirmation.to_dict() if self.confirmation is not None else None,
+            "channel_layer": self.channel_layer,
         }
 
     @classmethod
@@ -92,6 +186,10 @@ class AuditSettings:
             regions=RegionLayout(**data.get("regions", {})), tolerance=data.get("tolerance"),
             flag_concentration=data.get("flag_concentration", 4.0), flag_outside=data.get("flag_outside", 0.5),
             shard_size=data.get("shard_size", 8), threads=data.get("threads", 1),
+            # Runs stored before discovery existed carry neither key: they ran without it.
+            discovery=DiscoverySettings.from_dict(data["discovery"]) if data.get("discovery") else None,
+            confirmation=ConfirmSettings.from_dict(data["confirmation"]) if data.get("confirmation") else None,
+            channel_layer=data.get("channel_layer"),
         )
 
 

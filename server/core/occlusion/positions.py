@@ -52,10 +52,11 @@ def default_occlusion_geometry(height: int, width: int, *, patch: int | None = N
     12/6 at 96 px, 28/14 at 224 px, 4/2 at 32 px. The grid then has about 15×15 positions whatever
     the input size, and a patch is small enough to hide a stamp or a tag without hiding the
     subject. Our own choice (Zeiler & Fergus fix no size); the CLI, the API, the pages and the
-    audit all use it. A given ``patch`` or ``stride`` is kept as it is.
+    audit all use it. A given ``patch`` or ``stride`` is kept as it is; with only a stride given, the
+    patch is at least that stride, so no pixel is skipped.
     """
     if patch is None:
-        patch = max(2, min(int(height), int(width)) // 8)
+        patch = max(2, min(int(height), int(width)) // 8, int(stride) if stride is not None else 0)
     if stride is None:
         stride = max(1, int(patch) // 2)
     return int(patch), int(stride)

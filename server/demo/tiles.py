@@ -35,6 +35,7 @@ __all__ = [
     "TileRecord",
     "make_split",
     "make_tile",
+    "make_tile_with_boxes",
     "tile_seed",
     "write_folder",
 ]
@@ -269,6 +270,12 @@ def make_tile(*, label: str, tagged: bool, seed: int) -> np.ndarray:
     """One tile as a (96, 96, 3) uint8 array; the same arguments always give the same bytes."""
     _check_label(label)
     return _render(label, bool(tagged), int(seed))[0]
+
+
+def make_tile_with_boxes(*, label: str, tagged: bool, seed: int) -> tuple[np.ndarray, Box | None, Box | None]:
+    """:func:`make_tile` plus the tag box (None untagged) and the defect box (None for a sound tile)."""
+    _check_label(label)
+    return _render(label, bool(tagged), int(seed))
 
 
 def tile_seed(split: str, seed: int, label: str, index: int) -> int:

@@ -290,6 +290,8 @@
       ]));
     }
 
+    await showDiscovery(run, s);
+
     const inj = s.injection;
     $("#injection-box").hidden = !inj;
     if (inj) {
@@ -334,6 +336,58 @@
     }
     $("#run-settings").textContent = `${run.command ? "Command: " + run.command + "\n\n" : ""}Model ${run.model_name}, sha256 ${run.model_fingerprint}\nSpec ${run.model_spec}\nDataset ${run.dataset_root}, hash ${run.dataset_hash}\nPellucid ${run.tool_version}\n\n` + JSON.stringify(run.settings, null, 2);
     view.scrollIntoView({ behavior: "smooth", block: "start" });
+  }
+
+  // Discovery and confirmation: clusters of each class's maps, most suspicious first.
+  function clusterTests(c) {
+    const t = c.confirmation;
+    if (!t) return el("p", { class: "note", text: c.suspicion >= 0.3 ? "Not tested: other clusters ranked higher." : "Not tested: below the suspicion needed for a test." });
+    if (!t.removal) return el("p", { class: "note", text: t.sentence });
+    const r = t.removal;
+    const tr = t.transplant;
+    const pics = c.pictures || {};
+    return el("div", {}, [
+      el("p", {}, [el("strong", { class: t.confirmed ? "verdict-confirmed" : "", text: t.verdict + ". " }), t.sentence]),
+      el("table", { class: "ledger" }, [
+        el("thead", {}, el("tr", {}, ["test", "what was done", "result"].map((h) => el("th", { scope: "col", text: h })))),
+        el("tbody", {}, [
+          el("tr", {}, [el("th", { scope: "row", text: "removal" }), el("td", { text: r.how }),
+            el("td", { class: "num", text: `${pct(r.calls_lost_share)} of ${r.calls} call(s) lost; p ${fmt(r.p_before, 2)} → ${fmt(r.p_after, 2)}` })]),
+          tr ? el("tr", {}, [el("th", { scope: "row", text: "transplant" }), el("td", { text: tr.how }),
+            el("td", { class: "num", text: `${pct(tr.flip_rate)} of ${tr.eligible} flip (control ${pct(tr.control.flip_rate)}; net ${pct(tr.net_flip_rate)})` })]) : null,
+        ]),
+      ]),
+      el("div", { class: "pair" }, [picture(pics.before, "a typical image"), picture(pics.after, "the same image with its region taken away"), picture(pics.region, "the region tested")]),
+    ]);
+  }
+
+  async function showDiscovery(run, s) {
+    $("#discovery-box").hidden = !s.discovery;
+    if (!s.discovery) return;
+    const d = await api(`/api/audits/runs/${encodeURIComponent(run.id)}/discovery`);
+    $("#discovery-caution").textContent = d.caution;
+    const conf = d.confirmation;
+    $("#discovery-summary").textContent = `${d.total_clusters} cluster(s) in ${d.classes.length} class(es); ` +
+      (conf ? `${conf.candidates} tested, ${conf.confirmed} confirmed as shortcut(s)${conf.confirmed ? ": " + conf.confirmed_clusters.join(", ") : ""}.` : "confirmation was off.") +
+      (d.pictures_note ? " " + d.pictures_note + "." : "");
+    $("#discovery-colorbar").src = d.scale.colorbar;
+    const box = clear($("#discovery"));
+    for (const c of d.clusters) {
+      const p = c.placement;
+      const ch = c.channels && c.channels.channels && c.channels.channels.length
+        ? el("p", { class: "note", text: `Channels of ${c.channels.layer} that fire most above ${c.channels.compared_with} (Cohen's d): ` + c.channels.channels.slice(0, 5).map((x) => `${x.channel} (${fmt(x.effect, 2)})`).join(", ") })
+        : null;
+      box.append(el("div", { class: "cluster-row" }, [
+        el("div", { class: "cluster-head" }, [
+          el("strong", { text: `${c.key}` }), ` · ${c.size} image(s), ${pct(c.share)} of the class`, el("br"),
+          `suspicion ${fmt(c.suspicion, 2)}`, el("br"),
+          el("span", { class: "note", text: c.reasons.join("; ") + `; strongest region: ${p.region.replace("_", "-")}.` }),
+        ]),
+        c.mean_png ? el("img", { src: c.mean_png, class: "pixelated mean", alt: `mean evidence of cluster ${c.key}` }) : null,
+        el("div", { class: "pair" }, c.thumbnails.filter((t) => t.png).map((t) => el("img", { src: t.png, class: "pixelated thumb", alt: t.rel, title: t.rel }))),
+        el("div", { class: "cluster-tests" }, [clusterTests(c), ch]),
+      ]));
+    }
   }
 
   // A policy's [audit] table says which method its thresholds were set for: preselect it.

@@ -67,6 +67,10 @@ def register(sub: argparse._SubParsersAction) -> None:
                         "'random' for a seeded random place in each image")
     p.add_argument("--inject-class", default=None, metavar="CLASS", help="the class the patch is suspected to cue")
     p.add_argument("--inject-limit", type=int, default=None, metavar="N", help="test at most N images")
+    p.add_argument("--no-discovery", dest="discovery", action="store_false",
+                   help="skip discovery (clusters of each class's maps) and confirmation; both run by default")
+    p.add_argument("--no-confirmation", dest="confirmation", action="store_false",
+                   help="keep discovery but skip confirmation (removal and transplant of suspicious clusters)")
     p.add_argument("--background-swap", action="store_true",
                    help="also replace each object's background (needs masks or boxes) and report the accuracy change")
     p.add_argument("--gallery-layer", default=None, metavar="NAME",
@@ -178,6 +182,10 @@ def _command(args: argparse.Namespace) -> str:
         parts += ["--gallery-top", str(args.gallery_top)]
     if args.background_swap:
         parts.append("--background-swap")
+    if not getattr(args, "discovery", True):
+        parts.append("--no-discovery")
+    elif not getattr(args, "confirmation", True):
+        parts.append("--no-confirmation")
     if args.shard_size != 8:
         parts += ["--shard-size", str(args.shard_size)]
     if args.threads != 1:
@@ -203,7 +211,9 @@ def _default_method(args: argparse.Namespace, model: Any) -> None:
     """Grad-CAM, or occlusion for a model without forward hooks (TorchScript), which Grad-CAM needs."""
     if args.method is not None:
         return
-    args.method = "gradcam" if model.supports_hooks else "occlusion"
+    from pellucid.core.audit.settings import default_method
+
+    args.method = default_method(supports_hooks=model.supports_hooks)
     if not model.supports_hooks and not args.quiet:
         print("note: Grad-CAM is unavailable for TorchScript: needs forward hooks; this audit uses occlusion",
               file=sys.stderr)
@@ -264,8 +274,13 @@ def _audit(args: argparse.Namespace) -> int:
     try:
         model = load_model(resolve_model_ref(args.model), trust_pickled=args.trust_pickled)
         _default_method(args, model)
+        from pellucid.core.audit.settings import ConfirmSettings, DiscoverySettings
+
         settings = AuditSettings(method=args.method, params=params, target=args.target,
-                                 shard_size=args.shard_size, threads=args.threads).validated()
+                                 shard_size=args.shard_size, threads=args.threads,
+                                 discovery=DiscoverySettings() if args.discovery else None,
+                                 confirmation=ConfirmSettings() if args.discovery and args.confirmation else None,
+                                 ).validated()
         phases = _Phases(quiet=args.quiet)
         phases.phase("reading files")
         dataset = load_dataset(args.images, progress=phases)
@@ -326,6 +341,10 @@ def _audit(args: argparse.Namespace) -> int:
         from pellucid.core.audit.sentences import injection_sentence
 
         print(f"injection: {injection_sentence(summary['injection'])}")
+    from pellucid.core.audit.discovery_phase import discovery_lines
+
+    for line in discovery_lines(summary):
+        print(line)
     for entry in summary.get("failed", []):
         print(f"not audited: {entry['rel']}: {entry['reason']}")
     print(f"summary: {args.out / 'summary.json'}")

@@ -29,10 +29,12 @@ from pellucid import __version__
 from pellucid.core.audit import CAUTION, AuditSettings, GallerySpec, InjectionSpec, crop_patch, load_dataset, run_audit
 from pellucid.core.audit.compare import compare_runs
 from pellucid.core.audit.dataset import Dataset
+from pellucid.core.audit.discovery_phase import CLUSTER_CAUTION, THUMBNAILS
 from pellucid.core.audit.policy import Policy, evaluate_policy, failed_first, gate_of, gate_sentence, load_policy
 from pellucid.core.audit.preflight import check_audit_inputs
 from pellucid.core.audit.runner import stored_inputs
 from pellucid.core.audit.sentences import injection_sentence, unreadable_images
+from pellucid.core.audit.settings import ConfirmSettings, DiscoverySettings, default_method
 from pellucid.core.audit.store import RESUMABLE, Store
 from pellucid.core.errors import BadParameterError, ConflictError, DataError, NotFoundError, PellucidError
 from pellucid.core.jobs import BACKGROUND
@@ -109,9 +111,12 @@ class InjectionRequest(BaseModel):
 class AuditRequest(BaseModel):
     model: str | None = None
     source: DemoSource | FolderSource = Field(discriminator="kind")
-    method: str = "gradcam"
+    method: str | None = Field(None, description="attribution method; default: Grad-CAM, or occlusion for a model "
+                                                 "without forward hooks")
     params: dict[str, Any] = Field(default_factory=dict)
     target: Literal["label", "predicted"] = "label"
+    discovery: bool = Field(True, description="cluster each class's maps and rank the clusters by suspicion")
+    confirmation: bool = Field(True, description="test the most suspicious clusters by removal and transplant")
     injection: InjectionRequest | None = None
     background_swap: bool = False
     gallery_layer: str | None = None
@@ -303,7 +308,11 @@ def start(body: AuditRequest, request: Request, ws: Workspace = Depends(get_work
     name = body.model or ws.default_model
     if name not in ws.specs:
         raise NotFoundError(f"no model named {name!r} on this server; models: {', '.join(ws.specs)}")
-    audit_settings = AuditSettings(method=body.method, params=body.params, target=body.target).validated()
+    method = body.method or default_method(supports_hooks=ws.model(name).supports_hooks)
+    audit_settings = AuditSettings(
+        method=method, params=body.params, target=body.target,
+        discovery=DiscoverySettings() if body.discovery else None,
+        confirmation=ConfirmSettings() if body.discovery and body.confirmation else None).validated()
     ws.check_job(ws.model(name), audit_settings.method, audit_settings.params)  # per-image memory limits
     policy = _policy(body.policy)
     if body.injection is None and policy is not None and policy.injection is not None:
@@ -500,6 +509,52 @@ def gallery(run_id: str, channels: int = Query(8, ge=1, le=256), store: Store = 
         })
     return {"layer": g["layer"], "rf_size": g["rf_size"], "kernel_layer": g["kernel_layer"], "channels": out,
             "caution": "A synthetic picture shows what excites a channel, not what it responds to in these images."}
+
+
+@api.get("/runs/{run_id}/discovery", summary="Clusters of each class's maps, most suspicious first, with "
+                                             "pictures and the confirmation tests")
+def discovery(run_id: str, clusters: int = Query(12, ge=1, le=200), store: Store = Depends(get_store),
+              settings: Settings = Depends(get_settings)) -> dict:
+    run = _finished(store, run_id)
+    refusal = pictures_refusal(run, settings)  # numbers always; the images' pictures only where allowed
+    d = run.summary.get("discovery")
+    if not d:
+        raise NotFoundError(f"run {run.id} ran no discovery; start an audit with discovery on (the default)")
+    arts = store.run_artefacts(run.id)
+    conf = run.summary.get("confirmation") or {}
+    tested = {t["cluster"]: t for t in conf.get("tested", [])}
+    by_key = {c["key"]: c for cd in d["classes"] for c in cd["clusters"]}
+    ranked = [by_key[k] for k in d["ranking"] if k in by_key][:clusters]
+    means = {c["key"]: store.get_array(arts[f"discovery/{c['key']}/mean"]) for c in ranked
+             if f"discovery/{c['key']}/mean" in arts}
+    vmax = max((float(m.max()) for m in means.values()), default=1.0) or 1.0
+    cmap = render.MAGNITUDE_CMAP
+
+    def png(name: str) -> str | None:
+        digest = arts.get(name)
+        return data_url(store.get_bytes(digest)) if digest and refusal is None else None
+
+    out = []
+    for c in ranked:
+        key = c["key"]
+        entry = {**c, "mean_png": (data_url(render.map_png(means[key], signed=False, vmin=0.0, vmax=vmax, upscale=2))
+                                   if key in means else None),
+                 "thumbnails": [{"rel": rel, "png": png(f"discovery/{key}/member/{n}")}
+                                for n, rel in enumerate(c["members"][:THUMBNAILS])],
+                 "confirmation": tested.get(key)}
+        if key in tested:
+            entry["pictures"] = {k: png(f"confirm/{key}/{k}") for k in ("patch", "region", "before", "after")}
+        out.append(entry)
+    return {
+        "run_id": run.id, "method": d.get("method"), "settings": d.get("settings"),
+        "classes": [{k: cd[k] for k in ("class", "images", "clustered", "count", "note")} for cd in d["classes"]],
+        "clusters": out, "total_clusters": len(by_key),
+        "confirmation": {k: conf.get(k) for k in ("settings", "candidates", "confirmed", "confirmed_clusters",
+                                                  "channel_layer", "channel_note")} if conf else None,
+        "scale": {"vmin": 0.0, "vmax": vmax, "cmap": cmap, "meaning": "1 = as much evidence as an even spread",
+                  "colorbar": data_url(render.colorbar_png(vmin=0.0, vmax=vmax, cmap=cmap, label="mean evidence"))},
+        "pictures_note": refusal, "caution": CLUSTER_CAUTION,
+    }
 
 
 @api.get("/compare", summary="Differences between two stored runs")

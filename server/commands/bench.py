@@ -16,6 +16,7 @@ SUITES = {
     "load": "bench.load_bench",
     "shortcuts": "bench.shortcut_bench",
     "startup": "bench.startup_bench",
+    "audit": "bench.audit_bench",
 }
 
 

@@ -14,6 +14,7 @@ SUITES = {
     "latency": "bench.latency_bench",
     "attribution": "bench.attribution_bench",
     "load": "bench.load_bench",
+    "report": "bench.report_bench",
     "shortcuts": "bench.shortcut_bench",
     "startup": "bench.startup_bench",
     "audit": "bench.audit_bench",

@@ -32,10 +32,19 @@ _BATCH = 32
 
 
 def resolve_layer(model: LoadedModel, layer: str | None) -> str:
-    """``layer`` as given, or the feature map that feeds the head (Grad-CAM's default)."""
-    from pellucid.core.attribution.gradcam import check_gradcam_layer
+    """``layer`` as given (checked: it must have a 4-D output), or the feature map that feeds the head.
 
-    return check_gradcam_layer(model.module, model.input_shape, layer)
+    The default is Grad-CAM's default layer, so the channels ranked are those of the map discovery
+    looked at when the audit used Grad-CAM.
+    """
+    from pellucid.core.attribution.gradcam import check_gradcam_layer, default_gradcam_layer
+
+    if layer:
+        check_gradcam_layer(model.module, model.input_shape, layer)
+        return layer
+    p = next(model.module.parameters(), None)
+    dtype = p.dtype if p is not None and p.is_floating_point() else torch.float32
+    return default_gradcam_layer(model.module, torch.zeros(1, *model.input_shape, dtype=dtype))
 
 
 def _hook_point(model: torch.nn.Module, layer: str) -> tuple[torch.nn.Module, str]:

@@ -332,9 +332,14 @@ def _sentence(cluster: Cluster, removal: dict, transplant: dict | None, verdict:
               s: ConfirmSettings) -> str:
     c = cluster.label
     taking = ("Swapping the background of" if kind == "off_object" else "Filling the evidence region of")
-    parts = [f"{taking} cluster {cluster.key} ({cluster.size} image(s)) loses "
-             f"{_pct(removal['calls_lost_share'])} of the model's {removal['calls']} call(s) of {c!r} (mean p({c}) "
-             f"{removal['p_before']:.2f} → {removal['p_after']:.2f})"]
+    if removal["calls"]:
+        parts = [f"{taking} cluster {cluster.key} ({cluster.size} image(s)) loses "
+                 f"{_pct(removal['calls_lost_share'])} of the model's {removal['calls']} call(s) of {c!r} (mean "
+                 f"p({c}) {removal['p_before']:.2f} → {removal['p_after']:.2f})"]
+    else:
+        parts = [f"the model calls none of the {cluster.size} image(s) of cluster {cluster.key} {c!r}, so taking "
+                 f"their region away has no call to lose (mean p({c}) {removal['p_before']:.2f} → "
+                 f"{removal['p_after']:.2f})"]
     if transplant is None:
         parts.append("no image of another class could receive the region")
     else:
@@ -345,6 +350,7 @@ def _sentence(cluster: Cluster, removal: dict, transplant: dict | None, verdict:
                      f"{_pct(transplant['control'].get('flip_rate'))}, net {_pct(transplant.get('net_flip_rate'))})")
     need = (f"both effects must reach the thresholds (calls lost ≥ {_pct(s.min_calls_lost)}, net flips ≥ "
             f"{_pct(s.min_transplant_flips)})")
+    parts[0] = parts[0][0].upper() + parts[0][1:]
     if verdict == CONFIRMED:
         return "; ".join(parts) + f": {verdict} — {need}, and they do. The reviewer decides whether the region is " \
                                   "a shortcut or the legitimate cue."

@@ -136,6 +136,8 @@ def run_confirmation(model: LoadedModel, store: Store, rows: list[ResultRow], it
             layer = resolve_layer(model, settings.channel_layer)
         except PellucidError as exc:
             layer_note = str(exc)
+        if layer is None and layer_note is None:
+            layer_note = "no 4-D feature map feeds this model's head, so no channels are ranked"
     else:
         layer_note = "this model allows no forward hooks, so its channels cannot be read"
     cache: dict = {}

@@ -329,7 +329,7 @@ def start(body: AuditRequest, request: Request, ws: Workspace = Depends(get_work
     check_audit_inputs(lm, dataset, audit_settings, injection=injection)
     return _launch(request, ws, store, model_name=name, dataset_path=dataset_path, settings=audit_settings,
                    injection_req=None, background_swap=body.background_swap, gallery=gallery,
-                   policy=policy, description=f"audit of {dataset_path.name} with {name} ({body.method})",
+                   policy=policy, description=f"audit of {dataset_path.name} with {name} ({method})",
                    prebuilt_injection=injection, dataset=dataset)
 
 

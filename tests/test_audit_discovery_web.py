@@ -80,6 +80,14 @@ def test_discovery_can_be_turned_off(client: TestClient) -> None:
     assert r.json()["detail"].startswith(f"run {status['run_id']} ran no discovery")
 
 
+def test_a_channel_layer_without_a_map_is_refused_before_the_job(client: TestClient) -> None:
+    before = len(client.get("/api/audits/runs").json()["runs"])
+    r = client.post("/api/audits", json={"source": DEMO, "channel_layer": "no.such.layer"})
+    assert 400 <= r.status_code < 500
+    assert "the channel layer 'no.such.layer' cannot be ranked" in r.json()["detail"]
+    assert len(client.get("/api/audits/runs").json()["runs"]) == before
+
+
 def test_unknown_run_is_a_404_sentence(client: TestClient) -> None:
     r = client.get("/api/audits/runs/nope/discovery")
     assert r.status_code == 404 and r.json()["detail"]

@@ -27,9 +27,10 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="audit a labelled image folder for shortcut evidence; gate on a policy",
         description=(
             "Explain every image of a labelled folder (class subfolders or a CSV manifest) with an attribution "
-            "method, measure where the evidence sits (object, corners, border, centre), run the optional "
-            "injection and background-swap tests, store the run, and check it against a policy. Exits 0 when "
-            "every threshold holds, 1 when one fails."
+            "method, measure where the evidence sits (object, corners, border, centre), cluster each class's "
+            "maps and test the most suspicious clusters by removal and transplant (discovery and confirmation, "
+            "on by default), run the optional injection and background-swap tests, store the run, and check it "
+            "against a policy. Exits 0 when every threshold holds, 1 when one fails."
         ),
     )
     p.add_argument("--model", required=True, metavar="SPEC", help="model spec file or bundled model name")
@@ -71,6 +72,9 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="skip discovery (clusters of each class's maps) and confirmation; both run by default")
     p.add_argument("--no-confirmation", dest="confirmation", action="store_false",
                    help="keep discovery but skip confirmation (removal and transplant of suspicious clusters)")
+    p.add_argument("--channel-layer", default=None, metavar="NAME",
+                   help="rank the channels of this layer for suspicious clusters (default: Grad-CAM's layer, the "
+                        "feature map that feeds the head)")
     p.add_argument("--background-swap", action="store_true",
                    help="also replace each object's background (needs masks or boxes) and report the accuracy change")
     p.add_argument("--gallery-layer", default=None, metavar="NAME",
@@ -182,6 +186,8 @@ def _command(args: argparse.Namespace) -> str:
         parts += ["--gallery-top", str(args.gallery_top)]
     if args.background_swap:
         parts.append("--background-swap")
+    if getattr(args, "channel_layer", None):
+        parts += ["--channel-layer", args.channel_layer]
     if not getattr(args, "discovery", True):
         parts.append("--no-discovery")
     elif not getattr(args, "confirmation", True):
@@ -280,7 +286,7 @@ def _audit(args: argparse.Namespace) -> int:
                                  shard_size=args.shard_size, threads=args.threads,
                                  discovery=DiscoverySettings() if args.discovery else None,
                                  confirmation=ConfirmSettings() if args.discovery and args.confirmation else None,
-                                 ).validated()
+                                 channel_layer=args.channel_layer).validated()
         phases = _Phases(quiet=args.quiet)
         phases.phase("reading files")
         dataset = load_dataset(args.images, progress=phases)

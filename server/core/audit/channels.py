@@ -40,7 +40,11 @@ def resolve_layer(model: LoadedModel, layer: str | None) -> str:
     from pellucid.core.attribution.gradcam import check_gradcam_layer, default_gradcam_layer
 
     if layer:
-        check_gradcam_layer(model.module, model.input_shape, layer)
+        try:
+            check_gradcam_layer(model.module, model.input_shape, layer)
+        except UnsupportedLayerError as exc:
+            raise UnsupportedLayerError(f"the channel layer {layer!r} cannot be ranked, by the rule Grad-CAM's layers "
+                                        f"follow: {exc}") from None
         return layer
     p = next(model.module.parameters(), None)
     dtype = p.dtype if p is not None and p.is_floating_point() else torch.float32

@@ -185,6 +185,10 @@ def run_audit(
     _check_labels(model, dataset)
     # Bad input is refused here, before the run row exists (core/audit/preflight.py).
     check_audit_inputs(model, dataset, settings, injection=injection)
+    if settings.channel_layer and settings.confirmation is not None:
+        from pellucid.core.audit.channels import resolve_layer
+
+        resolve_layer(model, settings.channel_layer)  # a layer without a 4-D map is refused before the run row
     if gallery is not None and not model.supports_hooks:
         raise BadParameterError("this model does not allow forward hooks, so no channel gallery can be built; "
                                 "drop the gallery option")

@@ -117,6 +117,8 @@ class AuditRequest(BaseModel):
     target: Literal["label", "predicted"] = "label"
     discovery: bool = Field(True, description="cluster each class's maps and rank the clusters by suspicion")
     confirmation: bool = Field(True, description="test the most suspicious clusters by removal and transplant")
+    channel_layer: str | None = Field(None, description="layer whose channels are ranked for suspicious clusters; "
+                                                        "default: Grad-CAM's layer")
     injection: InjectionRequest | None = None
     background_swap: bool = False
     gallery_layer: str | None = None
@@ -312,7 +314,8 @@ def start(body: AuditRequest, request: Request, ws: Workspace = Depends(get_work
     audit_settings = AuditSettings(
         method=method, params=body.params, target=body.target,
         discovery=DiscoverySettings() if body.discovery else None,
-        confirmation=ConfirmSettings() if body.discovery and body.confirmation else None).validated()
+        confirmation=ConfirmSettings() if body.discovery and body.confirmation else None,
+        channel_layer=body.channel_layer).validated()
     ws.check_job(ws.model(name), audit_settings.method, audit_settings.params)  # per-image memory limits
     policy = _policy(body.policy)
     if body.injection is None and policy is not None and policy.injection is not None:
@@ -327,6 +330,10 @@ def start(body: AuditRequest, request: Request, ws: Workspace = Depends(get_work
     dataset = load_dataset(dataset_path, confine=True)
     injection = _injection(body.injection, lm, dataset.root, policy)
     check_audit_inputs(lm, dataset, audit_settings, injection=injection)
+    if audit_settings.channel_layer and audit_settings.confirmation is not None:
+        from pellucid.core.audit.channels import resolve_layer
+
+        resolve_layer(lm, audit_settings.channel_layer)
     return _launch(request, ws, store, model_name=name, dataset_path=dataset_path, settings=audit_settings,
                    injection_req=None, background_swap=body.background_swap, gallery=gallery,
                    policy=policy, description=f"audit of {dataset_path.name} with {name} ({method})",

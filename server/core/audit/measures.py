@@ -30,7 +30,6 @@ import math
 from dataclasses import asdict, dataclass
 
 import numpy as np
-from scipy import ndimage
 
 from pellucid.core.errors import BadParameterError
 
@@ -150,6 +149,8 @@ def pointing_hit(amap: np.ndarray, mask: np.ndarray, *, tolerance: float | None 
     y, x = np.unravel_index(int(np.argmax(m)), m.shape)
     if mask[y, x]:
         return True
+    from scipy import ndimage  # here: readers of stored runs (report, runs) need this module, not scipy
+
     # Euclidean distance from every pixel to the nearest object pixel.
     distance = ndimage.distance_transform_edt(~mask)
     return bool(distance[y, x] <= tolerance)

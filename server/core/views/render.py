@@ -21,7 +21,6 @@ matplotlib.use("Agg")
 
 import numpy as np  # noqa: E402
 from matplotlib import colormaps  # noqa: E402
-from matplotlib.figure import Figure  # noqa: E402
 from PIL import Image  # noqa: E402
 
 from pellucid.core.errors import BadParameterError  # noqa: E402
@@ -175,6 +174,8 @@ def activation_grid(maps: np.ndarray, *, order: np.ndarray | list[int] | None = 
 def colorbar_png(*, vmin: float, vmax: float, cmap: str = MAGNITUDE_CMAP, label: str = "",
                  width_px: int = 360, height_px: int = 64) -> bytes:
     """A horizontal colour bar with numbers, as PNG bytes."""
+    from matplotlib.figure import Figure  # here: importing it costs more than the rest of this module
+
     dpi = 100
     fig = Figure(figsize=(width_px / dpi, height_px / dpi), dpi=dpi)
     ax = fig.add_axes((0.05, 0.55, 0.9, 0.3))

@@ -153,7 +153,7 @@ def _compose(picture: np.ndarray, obj: np.ndarray | None, plate: np.ndarray) -> 
     return np.where(obj[..., None], picture, plate)
 
 
-def _removal(model: LoadedModel, k: int, before: np.ndarray, after: np.ndarray, regions: list[np.ndarray],
+def _removal(k: int, before: np.ndarray, after: np.ndarray, regions: list[np.ndarray],
              how: str) -> dict:
     drop = before[:, k] - after[:, k]
     acc_b = float((before.argmax(1) == k).mean())
@@ -246,7 +246,7 @@ def _spot_tests(model: LoadedModel, k: int, cluster: Cluster, kind: str, member_
         f = display.copy()
         f[region] = fill
         filled.append(f)
-    removal = _removal(model, k, _scores(model, displays), _scores(model, filled), regions,
+    removal = _removal(k, _scores(model, displays), _scores(model, filled), regions,
                        f"the region filled with the baseline colour {[int(v) for v in fill]}")
 
     # The candidate patch: the region of the most typical member, with the region's own shape.
@@ -297,7 +297,7 @@ def _background_tests(model: LoadedModel, k: int, cluster: Cluster, member_items
     theirs = [_plate(d, o) for _, d, o in receivers[:PLATES]]
     # Removal: each member keeps its object and gets a background of another class.
     swapped = [_compose(d, o, theirs[n % len(theirs)]) for n, (_, d, o) in enumerate(members)]
-    removal = _removal(model, k, _scores(model, [d for _, d, _ in members]), _scores(model, swapped),
+    removal = _removal(k, _scores(model, [d for _, d, _ in members]), _scores(model, swapped),
                        [~o for _, _, o in members], "each image keeps its object and gets another class's background")
     # Transplant: the other classes keep their objects and get the cluster's backgrounds; the
     # control gives them backgrounds of their own kind (never their own), so the compositing is alike.

@@ -35,6 +35,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from pellucid.core.audit.aggregate import REGION_WORDS
 from pellucid.core.audit.measures import REGIONS, positive_part, region_masks
 from pellucid.core.audit.settings import DiscoverySettings
 
@@ -179,14 +180,6 @@ def cluster_maps(small: np.ndarray, *, max_clusters: int, neighbour: int) -> tup
 
 # -------------------------------------------------------------------------------------- placement
 
-_REGION_WORDS = {
-    "border": "the border band",
-    "top_left": "the top-left corner",
-    "top_right": "the top-right corner",
-    "bottom_left": "the bottom-left corner",
-    "bottom_right": "the bottom-right corner",
-    "centre": "the centre",
-}
 
 
 @dataclass(frozen=True)
@@ -276,7 +269,7 @@ def suspicion(placement: Placement) -> tuple[float, list[str]]:
         reasons.append(f"{100 * p.off_object:.0f}% of its evidence lies off the annotated objects")
     elif p.fixed and p.region in OFF_CENTRE_REGIONS:
         apart = max(0.0, 1.0 - 1.0 / max(p.region_concentration, 1e-12))
-        reasons.append(f"it gathers in {_REGION_WORDS[p.region]} ({100 * p.region_share:.0f}% of the evidence, "
+        reasons.append(f"it gathers in {REGION_WORDS[p.region]} ({100 * p.region_share:.0f}% of the evidence, "
                        f"{p.region_concentration:.1f}× that region's share of the area); no objects are annotated")
     elif p.fixed:
         apart = 0.0
@@ -317,9 +310,9 @@ class Cluster:
 @dataclass
 class ClassDiscovery:
     label: str
-    images: int  # maps with positive evidence
-    clustered: int  # of them, clustered (an even sample beyond ``max_images``)
-    no_evidence: int
+    images: int  # maps of the class
+    clustered: int  # maps clustered: those with positive evidence (an even sample beyond ``max_images``)
+    no_evidence: int  # maps without any positive evidence
     eigenvalues: list[float]
     clusters: list[Cluster]
     spot_area: float | None

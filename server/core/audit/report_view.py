@@ -61,8 +61,8 @@ MEASURE_SENTENCES: dict[str, str] = {
                "above the region's area points to a possible shortcut such as a stamp, a watermark, a ruler or a "
                "frame.",
     "where": "Each cell is the class's mean share of the evidence in that region{off}; the first row is the region's "
-             "share of the image area. Shading grows with share ÷ area; a bold cell is at least {k:g}× its area "
-             "(the flag rule).",
+             "share of the image area. Shading grows with share ÷ area (the centre is never flagged and not "
+             "shaded); a bold cell is at least {k:g}× its area (the flag rule).",
     "flags": "A corner or the border is flagged for a class when its share of the evidence is at least "
              "{k:g}× its share of the image area.",
     "flagged_images": "Images where a corner or the border holds {k:g}× its share of the area{off}.",
@@ -137,9 +137,15 @@ def p(text: str, cls: str = "") -> dict:
 
 
 def table(head: list[str], rows: list[list[Any]], *, num: tuple[int, ...] = (), cls: str = "",
-          caption: str = "") -> dict:
-    """A table block; a cell is a value or ``{"text", "cls", "style"}``; columns in ``num`` align right."""
-    return {"kind": "table", "head": head, "rows": rows, "num": set(num), "cls": cls, "caption": caption}
+          caption: str = "", widths: tuple[int, ...] = ()) -> dict:
+    """A table block; a cell is a value or ``{"text", "cls", "style"}``; columns in ``num`` align right.
+
+    ``widths`` (percent per column) fixes the layout: the page engine then sizes the columns from
+    them instead of measuring every cell's text twice, which is most of a long table's cost.
+    """
+    assert not widths or len(widths) == len(head), (head, widths)
+    return {"kind": "table", "head": head, "rows": rows, "num": set(num), "cls": cls, "caption": caption,
+            "widths": widths}
 
 
 def cell(text: Any, cls: str = "", style: str = "") -> dict:
@@ -219,7 +225,8 @@ def _checks_table(content: ReportContent, *, limit: int | None) -> tuple[dict | 
         shown = rows[:limit]
         more = f"{len(rows) - limit} more check(s) under 'Gate checks' in the evidence."
         rows = shown
-    return table(["result", "scope", "policy key", "measured", "limit"], rows, num=(3, 4), cls="checks"), more
+    return table(["result", "scope", "policy key", "measured", "limit"], rows, num=(3, 4), cls="checks",
+                 widths=(10, 14, 36, 18, 22)), more
 
 
 # ------------------------------------------------------------------------------------------- summary page
@@ -383,7 +390,7 @@ def _channel_table(ch: dict | None) -> dict | None:
              f"{r.get('mean_rest', 0.0):.3f}"] for r in ch["channels"]]
     return table(["channel", "effect (Cohen's d)", f"mean in cluster ({ch.get('cluster_images', '?')} images)",
                   f"mean in {ch.get('compared_with', 'the rest')} ({ch.get('rest_images', '?')} images)"], rows,
-                 num=(0, 1, 2, 3), cls="compact")
+                 num=(0, 1, 2, 3), cls="compact", widths=(14, 22, 30, 34))
 
 
 def _top(content: ReportContent) -> dict:
@@ -446,7 +453,8 @@ def _gate_section(content: ReportContent) -> dict:
     if checks:
         blocks.append(p(MEASURE_SENTENCES["gate"], "meaning"))
         blocks.append(table(["result", "scope", "policy key", "measured", "limit", "check"],
-                            _check_rows(checks, sentences=True), num=(3, 4), cls="checks"))
+                            _check_rows(checks, sentences=True), num=(3, 4), cls="checks",
+                            widths=(8, 9, 23, 11, 11, 38)))
     return {"id": "gate", "title": "Gate checks", "blocks": blocks}
 
 
@@ -463,9 +471,12 @@ def _where_table(content: ReportContent) -> dict:
             if share is None or not areas.get(n):
                 row.append("n/a")
                 continue
+            if n == "centre":  # where the subject usually is: never flagged, so not shaded either
+                row.append(_pct(share))
+                continue
             ratio = share / areas[n]
             bg, fg = shade(ratio, 2 * k)
-            bold = n != "centre" and (ratio >= k or (c, n) in flagged)
+            bold = ratio >= k or (c, n) in flagged
             row.append(cell(_pct(share), cls="flag" if bold else "", style=f"background:{bg};color:{fg}"))
         rows.append(row)
     return table(head, rows, num=tuple(range(1, len(head))), cls="shaded")
@@ -523,7 +534,7 @@ def _measures_section(content: ReportContent) -> dict:
     confusion = _confusion_table(s)
     if confusion is not None:
         blocks += [p(MEASURE_SENTENCES["confusion"], "meaning"), confusion]
-    maps = {n.split("/", 1)[1]: a for n, a in content.arrays.items() if n.startswith("mean_map/")}
+    maps = {c: content.arrays[f"mean_map/{c}"] for c in s.get("labels", []) if f"mean_map/{c}" in content.arrays}
     if maps:
         vmax = max(float(a.max()) for a in maps.values()) or 1.0
         blocks += [p(MEASURE_SENTENCES["mean_maps"], "meaning"),
@@ -531,7 +542,7 @@ def _measures_section(content: ReportContent) -> dict:
                     "items": [{"label": c, "uri": heat_uri(a, vmax=vmax, layout=st.regions)}
                               for c, a in maps.items()],
                     "scale": {"uri": scale_uri(), "lo": "0", "hi": f"{vmax:.1f}",
-                              "mid": "1 = a uniform map" if vmax > 1 else ""}}]
+                              "mid": "evidence per pixel; 1 = what a uniform map puts everywhere"}}]
     return {"id": "measures", "title": "Per-class measures and mean maps", "blocks": blocks}
 
 
@@ -557,9 +568,10 @@ def _discovery_section(content: ReportContent) -> dict | None:
                      cell(f"{c.get('suspicion', 0.0):.2f}", "flag" if c.get("suspicion", 0.0) >= threshold else ""),
                      _where_words(c, objects), t.get("verdict", "not tested") if t else "not tested"])
     if rows:
-        blocks.append(table(["rank", "cluster", "class", "images", "share of class", "suspicion", "where its "
+        blocks.append(table(["#", "cluster", "class", "images", "share of class", "suspicion", "where its "
                              "evidence sits", "confirmation"], rows, num=(0, 3, 4, 5),
-                            caption=f"Every cluster, most suspicious first (bold: suspicion ≥ {threshold:g})"))
+                            caption=f"Every cluster, most suspicious first (bold: suspicion ≥ {threshold:g})",
+                            widths=(5, 11, 10, 9, 9, 11, 30, 15)))
     for cd in disc.get("classes", []):
         if cd.get("note"):
             blocks.append(p(f"{cd.get('class')}: {cd['note']}", "note"))
@@ -567,7 +579,7 @@ def _discovery_section(content: ReportContent) -> dict | None:
     shown = [c for c in ranked if c.get("suspicion", 0.0) >= threshold] or ranked[:1]
     if shown:
         blocks.append({"kind": "scale", "uri": scale_uri(), "lo": "0", "hi": f"{vmax:.1f}",
-                       "label": "cluster mean maps, one scale (1 = an even spread)"})
+                       "label": "cluster mean maps on one scale; 1 = what an even spread puts everywhere"})
     for c in shown:
         blocks.append(_cluster_card(content, c, members=6, vmax=vmax, tested=tested.get(c["key"]),
                                     conf_settings=conf_settings, detail=True))
@@ -616,7 +628,8 @@ def _confirmation_section(content: ReportContent) -> dict | None:
                          f"{_pct(transplant.get('net_flip_rate'))}",
                          f"net flips ≥ {_pct(st.get('min_transplant_flips'))}"])
         if rows:
-            blocks.append(table(["test", "what was done", "images", "effect", "threshold"], rows))
+            blocks.append(table(["test", "what was done", "images", "effect", "threshold"], rows,
+                                widths=(12, 26, 18, 29, 15)))
         if region:
             blocks.append(p(f"Region: {region.get('words', region.get('kind', ''))}; box {region.get('box')}, "
                             f"{_pct(region.get('area'))} of the image, from {region.get('from', '—')}.", "note"))
@@ -652,7 +665,7 @@ def _flagged_section(content: ReportContent) -> dict:
     if len(flagged) > FLAGGED_PICTURES:
         blocks.append(table(["more flagged images", "true", "called", "why"],
                             [[cell(f["rel"], "mono"), f["label"], f["predicted_label"], "; ".join(f["reasons"])]
-                             for f in flagged[FLAGGED_PICTURES:]]))
+                             for f in flagged[FLAGGED_PICTURES:]], widths=(32, 12, 12, 44)))
     if s.get("flagged_count", 0) > len(flagged):
         blocks.append(p(f"The run lists the first {len(flagged)} of {s['flagged_count']} flagged images.", "note"))
     return {"id": "flagged", "title": "Flagged images", "blocks": blocks}
@@ -691,7 +704,8 @@ def _injection_section(content: ReportContent) -> dict | None:
         blocks.append(pictures(ex))
     if inj.get("skipped_images"):
         blocks.append(table(["skipped image", "why"],
-                            [[cell(x["rel"], "mono"), x["reason"]] for x in inj["skipped_images"][:200]]))
+                            [[cell(x["rel"], "mono"), x["reason"]] for x in inj["skipped_images"][:200]],
+                            widths=(35, 65)))
     return {"id": "injection", "title": "Injection test", "blocks": blocks}
 
 
@@ -747,7 +761,8 @@ def _unreadable_section(content: ReportContent) -> dict | None:
         return None
     return {"id": "unreadable", "title": "Images that could not be used", "blocks": [
         p(MEASURE_SENTENCES["unreadable"], "meaning"),
-        table(["image", "stage", "reason"], [[cell(u["rel"], "mono"), u["stage"], u["reason"]] for u in unreadable]),
+        table(["image", "stage", "reason"], [[cell(u["rel"], "mono"), u["stage"], u["reason"]] for u in unreadable],
+              widths=(30, 16, 54)),
     ]}
 
 
@@ -775,7 +790,7 @@ def _appendix(content: ReportContent, *, paper: str) -> list[dict]:
             ["dataset hash", cell(run.dataset_hash, "mono")],
             ["manifest sha256", cell(ds.get("manifest_sha256") or "—", "mono")], ["method", run.method],
             ["environment", provenance_line(s["provenance"]) if s.get("provenance") else "not recorded"],
-        ], cls="keyvalue"),
+        ], cls="keyvalue", widths=(30, 70)),
         p("Exact command:"),
         pre(run.command or "(not recorded: the run was started from the dashboard or a notebook)"),
     ]
@@ -791,7 +806,7 @@ def _appendix(content: ReportContent, *, paper: str) -> list[dict]:
         rows = [["name", pol.get("name", "")], ["description", pol.get("description") or "—"],
                 ["file", cell(pol.get("path") or "—", "mono")], ["sha256", cell(pol.get("sha256") or "—", "mono")]]
         rows += [[cell(k, "mono"), _value(k, v)] for k, v in (pol.get("thresholds") or {}).items()]
-        blocks = [table(["policy", "value"], rows, cls="keyvalue")]
+        blocks = [table(["policy", "value"], rows, cls="keyvalue", widths=(30, 70))]
         if pol.get("classes"):
             blocks += [p("Per-class thresholds:"), pre(json.dumps(pol["classes"], indent=2, sort_keys=True))]
         if pol.get("injection"):
@@ -802,7 +817,7 @@ def _appendix(content: ReportContent, *, paper: str) -> list[dict]:
         ["fingerprint", cell(model.get("fingerprint", run.model_fingerprint), "mono")],
         ["input (C, H, W)", model.get("input_shape")], ["output", model.get("output_kind")],
         ["classes", ", ".join(s.get("labels", []))],
-    ], cls="keyvalue")]
+    ], cls="keyvalue", widths=(30, 70))]
     if model.get("spec_text"):
         mod += [p("Model spec:"), pre(model["spec_text"])]
     if model.get("card_text"):
@@ -825,7 +840,7 @@ def _appendix(content: ReportContent, *, paper: str) -> list[dict]:
                  ["PDF engine", _engine_version()], ["paper", PAPERS[paper][1]]]
     out.append({"id": "environment", "title": "Environment", "blocks": [
         p("Where the audit ran (as recorded with the run) and what made this report:"),
-        table(["what", "value"], env_rows, cls="keyvalue")]})
+        table(["what", "value"], env_rows, cls="keyvalue", widths=(30, 70))]})
     return out
 
 

@@ -181,6 +181,10 @@ def run_confirmation(model: LoadedModel, store: Store, rows: list[ResultRow], it
     }, artefacts
 
 
+def _pct(v: float | None) -> str:
+    return "n/a" if v is None else f"{100 * v:.0f}%"
+
+
 def discovery_lines(summary: dict) -> list[str]:
     """Short lines for a terminal: what discovery found and what confirmation concluded."""
     d = summary.get("discovery")
@@ -191,8 +195,7 @@ def discovery_lines(summary: dict) -> list[str]:
     line = f"discovery: {len(clusters)} cluster(s) in {len(d['classes'])} class(es)"
     if ranked and ranked[0]["suspicion"] > 0:
         top = ranked[0]
-        line += (f"; most suspicious: {top['key']} ({top['size']} image(s), suspicion {top['suspicion']:.2f}: "
-                 f"{'; '.join(top['reasons'])})")
+        line += f"; most suspicious: {top['key']} ({top['size']} image(s), suspicion {top['suspicion']:.2f})"
     else:
         line += "; none sits in a small spot or off the object"
     lines = [line]
@@ -200,7 +203,12 @@ def discovery_lines(summary: dict) -> list[str]:
     if conf:
         for t in conf["tested"]:
             if t.get("confirmed"):
-                lines.append(f"confirmed shortcut: {t['sentence']}")
+                r, tr = t["removal"], t["transplant"] or {}
+                lines.append(
+                    f"confirmed shortcut: cluster {t['cluster']} ({r['images']} image(s)) — taking its region away "
+                    f"loses {_pct(r['calls_lost_share'])} of its {t['class']!r} calls; putting it into "
+                    f"{tr.get('eligible', 0)} other image(s) flips {_pct(tr.get('flip_rate'))} (control "
+                    f"{_pct((tr.get('control') or {}).get('flip_rate'))})")
         lines.append(f"confirmation: {conf['confirmed']} of {len(conf['tested'])} tested cluster(s) confirmed; "
                      "a confirmed cluster is evidence, not proof — the reviewer's domain rules decide")
     return lines

@@ -215,13 +215,27 @@ class Placement:
                 "with_object": self.with_object, "fixed": self.fixed}
 
 
-def _placement(units: list[np.ndarray], masks: list[np.ndarray | None], mean: np.ndarray,
-               regions: dict[str, np.ndarray]) -> Placement:
-    """Placement of a cluster from its members' unit-mass maps, their object masks and their mean."""
+@dataclass(frozen=True)
+class _Member:
+    """What placement needs of one map, computed once so the full map need not be kept."""
+
+    spot: float  # half-mass area share of its own map
+    peak: tuple[int, int]
+    off_object: float | None
+
+
+def _member(unit: np.ndarray, mask: np.ndarray | None) -> _Member:
+    peak = np.unravel_index(int(np.argmax(unit)), unit.shape)
+    return _Member(spot=half_mass_area(unit) or 0.5, peak=(int(peak[0]), int(peak[1])),
+                   off_object=float(unit[~mask].sum()) if mask is not None and mask.shape == unit.shape else None)
+
+
+def _placement(members: list[_Member], mean: np.ndarray, regions: dict[str, np.ndarray]) -> Placement:
+    """Placement of a cluster from its members' facts and their mean unit-mass map."""
     h, w = mean.shape
     spot = half_mass_area(mean) or 0.5
-    member = float(np.median([half_mass_area(u) or 0.5 for u in units]))
-    peaks = np.array([np.unravel_index(int(np.argmax(u)), u.shape) for u in units], dtype=np.float64)
+    member = float(np.median([m.spot for m in members]))
+    peaks = np.array([m.peak for m in members], dtype=np.float64)
     spread = float(np.sqrt(((peaks - peaks.mean(0)) ** 2).sum(1).mean()) / math.hypot(h, w))
     total = float(mean.sum())
     best, best_share, best_conc = "centre", 0.0, 0.0
@@ -231,7 +245,7 @@ def _placement(units: list[np.ndarray], masks: list[np.ndarray | None], mean: np
         conc = share / max(float(mask.mean()), 1e-12)
         if conc > best_conc:
             best, best_share, best_conc = name, share, conc
-    off = [float(u[~m].sum()) for u, m in zip(units, masks) if m is not None]
+    off = [m.off_object for m in members if m.off_object is not None]
     return Placement(spot_area=spot, member_spot_area=member, spread=spread, region=best, region_share=best_share,
                      region_concentration=best_conc, off_object=float(np.mean(off)) if off else None,
                      with_object=len(off))
@@ -348,24 +362,28 @@ def _even_sample(n: int, limit: int) -> list[int]:
 
 def discover_class(entries: Sequence[MapEntry], *, label: str,
                    settings: DiscoverySettings | None = None) -> ClassDiscovery:
-    """Cluster the maps of one class (``entries`` all explain ``label``); see the module docstring."""
+    """Cluster the maps of one class (``entries`` all explain ``label``); see the module docstring.
+
+    Memory: beyond the entries' own maps, only the small maps and a few numbers per image are
+    kept; cluster means are summed in a second pass over the entries.
+    """
     s = (settings or DiscoverySettings()).validated()
-    units: list[np.ndarray] = []
-    kept: list[MapEntry] = []
-    for e in entries:
-        u = _unit_mass(e.amap)
-        if u is not None:
-            units.append(u)
-            kept.append(e)
+    kept = [e for e in entries if _unit_mass(e.amap) is not None]
     if not kept:
         return ClassDiscovery(label, len(entries), 0, len(entries), [], [], None,
                               note="no image of this class has positive evidence")
     n_evidence = len(kept)
-    pick = _even_sample(n_evidence, s.max_images)
-    units = [units[i] for i in pick]
-    kept = [kept[i] for i in pick]
-    regions = region_masks(units[0].shape)
-    small = np.stack([_downsize(u, s.grid).ravel() for u in units])
+    kept = [kept[i] for i in _even_sample(n_evidence, s.max_images)]
+    shape = np.shape(kept[0].amap)
+    regions = region_masks(shape)
+    small_rows: list[np.ndarray] = []
+    facts: list[_Member] = []
+    for e in kept:
+        u = _unit_mass(e.amap)
+        assert u is not None
+        small_rows.append(_downsize(u, s.grid).ravel())
+        facts.append(_member(u, e.object_mask))
+    small = np.stack(small_rows)
     note = None
     if len(kept) < s.min_images:
         assign, values, k = np.zeros(len(kept), dtype=np.int64), [], 1
@@ -374,20 +392,23 @@ def discover_class(entries: Sequence[MapEntry], *, label: str,
         assign, values, k = cluster_maps(small, max_clusters=s.max_clusters, neighbour=s.neighbour)
         if len(kept) < n_evidence:
             note = f"an even sample of {len(kept)} of the class's {n_evidence} maps was clustered"
+    sums = np.zeros((k, *shape))
+    for i, e in enumerate(kept):
+        sums[assign[i]] += _unit_mass(e.amap)
     clusters: list[Cluster] = []
     for c in range(k):
         idx = [i for i in range(len(kept)) if assign[i] == c]
         centre = small[idx].mean(axis=0)
         order = sorted(idx, key=lambda i: (float(((small[i] - centre) ** 2).sum()), i))
-        mean = np.mean([units[i] for i in idx], axis=0)
-        place = _placement([units[i] for i in idx], [kept[i].object_mask for i in idx], mean, regions)
+        mean = sums[c] / len(idx)
+        place = _placement([facts[i] for i in idx], mean, regions)
         score, reasons = suspicion(place)
         clusters.append(Cluster(label=label, index=c, size=len(idx), share=len(idx) / len(kept),
                                 members=[kept[i].rel for i in order], placement=place, suspicion=score,
                                 reasons=reasons, mean_map=(mean * mean.size).astype(np.float32)))
     return ClassDiscovery(label=label, images=len(entries), clustered=len(kept), no_evidence=len(entries) - n_evidence,
                           eigenvalues=values[:8], clusters=clusters,
-                          spot_area=half_mass_area(np.mean(units, axis=0)), note=note)
+                          spot_area=half_mass_area(sums.sum(axis=0) / len(kept)), note=note)
 
 
 def discover(entries: Sequence[MapEntry], *, labels: Sequence[str],

@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import re
+import sys
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -179,3 +180,15 @@ def test_report_of_unfinished_run(tmp_path: Path) -> None:
                                command=None, total=1)
         with pytest.raises(BadParameterError, match="only finished runs have a report"):
             write_report(store, run.id, tmp_path / "out")
+
+
+def test_without_the_pdf_engine_the_html_is_kept_and_one_line_says_what_to_install(finished, monkeypatch, capsys):
+    from pellucid.cli import main
+
+    store, outcome, root = finished
+    monkeypatch.setitem(sys.modules, "weasyprint", None)  # as if the package were not installed
+    out = root / "no-engine"
+    code = main(["report", outcome.run.id, "--store", str(store.root), "--out", str(out)])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "pip install weasyprint" in err[0] and "Traceback" not in err[0]
+    assert (out / "report.html").is_file() and not list(out.glob("report.pdf*"))

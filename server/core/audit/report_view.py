@@ -47,8 +47,9 @@ PAPERS: dict[str, tuple[str, str]] = {
     "a4": ("A4", "A4 (210 × 297 mm)"),
     "letter": ("letter", "US Letter (8.5 × 11 in)"),
 }
-SUMMARY_CHECKS = 6  # checks listed on the summary page (failed first); all of them under the evidence
-SUMMARY_CLUSTERS = 3
+# What the summary page lists, so that it stays one page on A4 and on Letter; the evidence lists all.
+SUMMARY_CHECKS = 5  # failed first
+SUMMARY_CLUSTERS = 2
 SUMMARY_FLAGGED = 4
 
 DECISION_LINE = ("The gate's verdict is one input to the decision, not the decision itself: the decision follows "
@@ -133,10 +134,11 @@ def _top(content: ReportContent) -> dict:
             tested = tested_clusters(s)
             conf_settings = (s.get("confirmation") or {}).get("settings") or {}
             vmax = cluster_vmax(content)
+            more = (f" {len(ranked) - SUMMARY_CLUSTERS} more under 'Suspicious clusters' in the evidence."
+                    if len(ranked) > SUMMARY_CLUSTERS else "")
             return {"title": "Most suspicious clusters", "kind": "clusters",
-                    "note": (f"Clusters of images whose evidence looks alike, with suspicion at least {threshold:g} "
-                             f"(of {len(ranked_clusters(s))} clusters); mean map first, then the most typical "
-                             "members."),
+                    "note": (f"{len(ranked)} of {len(ranked_clusters(s))} clusters have a suspicion of at least "
+                             f"{threshold:g}; each shows its mean map, then its most typical members.{more}"),
                     "items": [cluster_card(content, c, members=3, vmax=vmax, tested=tested.get(c["key"]),
                                             conf_settings=conf_settings, detail=False)
                               for c in ranked[:SUMMARY_CLUSTERS]]}

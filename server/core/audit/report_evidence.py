@@ -147,7 +147,7 @@ def checks_table(content: ReportContent, *, limit: int | None) -> tuple[dict | N
     more = ""
     if limit is not None and len(rows) > limit:
         shown = rows[:limit]
-        more = f"{len(rows) - limit} more check(s) under 'Gate checks' in the evidence."
+        more = f"{len(rows) - limit} more check(s), with their sentences, in the evidence."
         rows = shown
     return table(["result", "scope", "policy key", "measured", "limit"], rows, num=(3, 4), cls="checks",
                  widths=(10, 14, 36, 18, 22)), more

@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from pellucid.core.audit.store import DB_NAME, Store
+from pellucid.core.audit.store import DB_NAME, SCHEMA_VERSION, Store
 from pellucid.core.errors import NotFoundError, StoreError
 
 
@@ -180,7 +180,7 @@ def test_version_1_store_is_migrated_and_keeps_its_runs(tmp_path: Path) -> None:
         assert [r.rel for r in store.results("old-run")] == ["a.png"]
         assert store.integrity_check() == "ok"
     db = sqlite3.connect(tmp_path / "old" / DB_NAME)
-    assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()[0] == "2"
+    assert db.execute("SELECT value FROM meta WHERE key='schema'").fetchone()[0] == str(SCHEMA_VERSION)
     db.close()
     with Store(tmp_path / "old") as store:  # opening again changes nothing
         assert store.get_run("old-run").gate == gate
@@ -196,8 +196,8 @@ def test_gate_is_stored_with_the_run_and_a_newer_store_is_refused(tmp_path: Path
         with pytest.raises(NotFoundError):
             store.set_gate("no-such-run", gate)
     db = sqlite3.connect(tmp_path / "s" / DB_NAME)
-    db.execute("UPDATE meta SET value='3' WHERE key='schema'")
+    db.execute("UPDATE meta SET value=? WHERE key='schema'", (str(SCHEMA_VERSION + 1),))
     db.commit()
     db.close()
-    with pytest.raises(StoreError, match="schema version 3, newer than"):
+    with pytest.raises(StoreError, match=f"schema version {SCHEMA_VERSION + 1}, newer than"):
         Store(tmp_path / "s")

@@ -128,6 +128,38 @@ class ImageInfo(BaseModel):
     original_mode: str
     format: str | None
     notes: list[str]
+    link: str | None = Field(None, description="the image page with this image open")
+    thumbnail: str | None = Field(None, description="URL of a small PNG of the image")
+    created: float | None = Field(None, description="when the store first kept it (seconds since 1970)")
+    used: float | None = Field(None, description="when it was last opened")
+
+
+class MapSummary(BaseModel):
+    id: str
+    image: str
+    image_name: str
+    model: str
+    fingerprint: str
+    method: str
+    title: str
+    target: int
+    target_label: str
+    target_source: str
+    signed: bool
+    params: dict[str, Any]
+    engine: str | None
+    warning: str | None
+    seconds: float
+    created: float
+    checks: list[str] = Field(description="checks kept with the map: faithfulness, sanity")
+    thumbnail: str
+    link: str = Field(description="the image page with this map open: a link to send to a reviewer")
+
+
+class MapList(BaseModel):
+    image: str
+    model: str | None
+    maps: list[MapSummary]
 
 
 class PreparedView(BaseModel):
@@ -266,16 +298,37 @@ class JobStatus(BaseModel):
     state: str = Field(description="queued, running, done, failed or cancelled")
     done: int
     total: int
+    unit: str = Field("steps", description="what done and total count: patch positions, masks, maps, images, …")
     fraction: float
     seconds_left: float | None
+    left_from: str | None = Field(None, description="'rate' (measured so far) or 'estimate' (before any unit "
+                                                    "finished: the estimate minus the time elapsed)")
+    estimate_seconds: float | None = Field(None, description="what the job was estimated to take when it started")
     elapsed: float
     error: str | None
     result_id: str | None
     cached: bool = False
+    lane: str = "interactive"
+    created: float | None = None
+    started: float | None = Field(None, description="when it began running (seconds since 1970)")
+    finished: float | None = Field(None, description="when it ended (seconds since 1970)")
+    model: str | None = None
+    image: str | None = Field(None, description="the image the job works on (sha256)")
+    image_name: str | None = None
+    method: str | None = None
+    run_id: str | None = Field(None, description="audits: the stored run")
+    phase: str | None = Field(None, description="audits: the phase running now")
+    link: str | None = Field(None, description="where the job's subject or result is shown")
+
+
+class JobList(BaseModel):
+    jobs: list[JobStatus] = Field(description="newest first: queued and running jobs, then finished ones")
+    active: int = Field(description="jobs queued or running")
 
 
 class ResultResponse(BaseModel):
     id: str
+    link: str = Field(description="the image page with this map open: a link to send to a reviewer")
     model: str
     fingerprint: str
     image: str
@@ -294,7 +347,8 @@ class ResultResponse(BaseModel):
     seconds: float
     n_forwards: int
     n_backwards: int
-    value_label: str
+    value_label: str = Field(description="what one value of the map means, with its unit")
+    unit: str = Field("", description="the unit alone, as the colour bar states it")
     vmin: float
     vmax: float
     cmap: str
@@ -305,6 +359,16 @@ class ResultResponse(BaseModel):
     caution: str = CAUTION
     faithfulness: dict[str, Any] | None = Field(None, description="deletion/insertion curves and AUCs, once scored")
     sanity: dict[str, Any] | None = Field(None, description="cascading-randomisation verdict and steps, once run")
+
+
+class CheckEstimateResponse(BaseModel):
+    result_id: str
+    check: str = Field(description="faithfulness or sanity")
+    units: str = Field(description="what the check's progress counts: curve points or maps")
+    count: int
+    forwards: float = Field(description="work in forward-pass equivalents")
+    seconds: float | None = Field(description="forwards × one measured forward on this server")
+    done: bool = Field(description="true when the check is already kept with the map (served at once)")
 
 
 class Ranking(BaseModel):

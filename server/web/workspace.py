@@ -1,4 +1,10 @@
-"""What a running server holds: the models it may serve, recent images, jobs and cached results."""
+"""What a running server holds: the models it may serve, images, jobs and results.
+
+Images and finished maps are durable: they are kept in the store (``--store``, the same data
+folder as the audit runs, through ``core/workbench/``), so a link to an image or a map still works
+after a restart. Decoded pixels and results are also held in memory, within a byte budget, for
+speed; what memory lets go of is read back from the store on the next use.
+"""
 
 from __future__ import annotations
 
@@ -13,16 +19,19 @@ from typing import Any
 import numpy as np
 
 from pellucid.core.attribution.budget import JobEstimate, JobLimits, check_job, estimate_job, in_flight_bytes
+from pellucid.core.audit.store import Store
 from pellucid.core.cache import ResultCache
 from pellucid.core.confine import resolve_inside as _confined
-from pellucid.core.errors import ModelLoadError, NotFoundError, PellucidError
+from pellucid.core.errors import ConflictError, ModelLoadError, NotFoundError, PellucidError
 from pellucid.core.jobs import BACKGROUND, INTERACTIVE, JobManager, Lane
 from pellucid.core.model.bundled import bundled_specs
 from pellucid.core.model.layers import LayerMap, layer_map
 from pellucid.core.model.loading import LoadedModel, load_model
-from pellucid.core.model.preprocess import IntakeImage, PreparedInput, prepare
+from pellucid.core.model.preprocess import IntakeImage, PreparedInput, prepare, read_image
 from pellucid.core.model.spec import ModelSpec
+from pellucid.core.workbench import StoredImage, StoredMap, Workbench
 from pellucid.web.image_cache import ByteBudgetLru, ImageCache, prepared_bytes
+from pellucid.web.run_access import RunClaims
 from pellucid.web.settings import Settings
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".gif", ".bmp", ".tif", ".tiff", ".webp")
@@ -101,6 +110,12 @@ class Workspace:
                                        what="prepared input")
         self._layer_maps = _Lru(limit=16)
         self._forward_seconds = _Lru(limit=16)
+        self._spec_lock = threading.Lock()
+        self._store: Store | None = None
+        self._store_lock = threading.Lock()
+        # Audit jobs: phase and run id of each (by job id), and the runs a job is resuming now.
+        self.audit_live: dict[str, dict] = {}
+        self.audit_claims = RunClaims()
         self._collect_specs()
 
     def _collect_specs(self) -> None:
@@ -120,6 +135,31 @@ class Workspace:
                 self.spec_errors[ref] = str(exc)
                 continue
             self.specs.setdefault(spec.name, spec)
+
+    def add_spec(self, path: Path) -> ModelSpec:
+        """Serve one more model from a spec file (the caller has confined ``path``); 409 for a name in use."""
+        spec = ModelSpec.from_toml(path)
+        with self._spec_lock:
+            if spec.name in self.specs:
+                same = self.specs[spec.name].path and Path(self.specs[spec.name].path).resolve() == path.resolve()
+                if same:
+                    return self.specs[spec.name]
+                raise ConflictError(f"a model named {spec.name!r} is already served (from another spec file); "
+                                    "give the new spec another name")
+            self.specs[spec.name] = spec
+        return spec
+
+    @property
+    def store(self) -> Store:
+        """The data folder's store, opened on first use (StoreError → 503 with its reason)."""
+        with self._store_lock:
+            if self._store is None:
+                self._store = Store(self.settings.data_dir)
+            return self._store
+
+    @property
+    def workbench(self) -> Workbench:
+        return Workbench(self.store)
 
     @property
     def default_model(self) -> str:
@@ -142,23 +182,38 @@ class Workspace:
         with self._model_lock:
             return dict(self._models)
 
-    def add_image(self, image: IntakeImage) -> str:
-        """Keep a decoded image within the memory budget (raises ImageTooLargeError when it alone is over)."""
+    def add_image(self, image: IntakeImage, data: bytes) -> StoredImage:
+        """Keep an image: its file bytes in the store, its decoded pixels in memory within the budget
+        (ImageTooLargeError when it alone is over the budget; then nothing is stored)."""
+        self._hold(image)
+        return self.workbench.put_image(data, image)
+
+    def _hold(self, image: IntakeImage) -> None:
         evicted = self.image_cache.add(image)
         if evicted:
             gone = set(evicted)
             self._prepared.discard_where(lambda key: key[2] in gone)
-        return image.sha256
 
-    def images(self) -> list[IntakeImage]:
-        return self.image_cache.list()
+    def images(self, *, limit: int = 48) -> list[StoredImage]:
+        """Stored images, most recently used first."""
+        return self.workbench.recent_images(limit=limit)
+
+    def stored_image(self, sha256: str) -> StoredImage:
+        found = self.workbench.image(sha256)
+        if found is None:
+            raise NotFoundError(f"no image with id {sha256[:16]!r} on this server; upload it again")
+        return found
 
     def image(self, sha256: str) -> IntakeImage:
+        """The decoded image: from memory, else read back from the store (and held again)."""
         img = self.image_cache.get(sha256)
-        if img is None:
-            raise NotFoundError(
-                f"no image with id {sha256[:16]!r} on this server (it may have expired); upload it again"
-            )
+        if img is not None:
+            return img
+        stored = self.stored_image(sha256)
+        with self.decode_slots:
+            img = read_image(self.workbench.image_bytes(stored.sha256), name=stored.name,
+                             max_bytes=max(self.settings.max_upload_bytes, 1), max_pixels=self.settings.max_pixels)
+        self._hold(img)
         return img
 
     def prepared(self, model: LoadedModel, image_id: str) -> PreparedInput:
@@ -222,12 +277,44 @@ class Workspace:
         return folder if folder.is_dir() else None
 
     def result(self, result_id: str) -> ResultRecord:
+        """A finished map: from memory, else read back from the store."""
         record = self.cache.get(result_id)
-        if record is None:
-            raise NotFoundError(
-                f"no result with id {result_id[:24]!r} on this server (it may have expired); run the method again"
-            )
+        if record is not None:
+            return record
+        stored = self.workbench.get_map(result_id)
+        if stored is None:
+            raise NotFoundError(f"no map with id {result_id[:24]!r} on this server; compute it again")
+        record = self._record_of(stored)
+        self.cache.put(result_id, record)
         return record
+
+    def has_result(self, result_id: str) -> bool:
+        return self.cache.get(result_id) is not None or self.workbench.get_map(result_id) is not None
+
+    def _record_of(self, stored: StoredMap) -> ResultRecord:
+        values, display = self.workbench.arrays(stored)
+        return ResultRecord(
+            id=stored.id, model=stored.model_name, fingerprint=stored.model_fingerprint, image=stored.image,
+            image_name=stored.image_name, method=stored.method, title=stored.title, target=stored.target,
+            target_label=stored.target_label, amap=stored.attribution_map(values), display=display,
+            created=stored.created, faithfulness=stored.checks.get("faithfulness"),
+            sanity=stored.checks.get("sanity"))
+
+    def keep_result(self, record: ResultRecord, *, thumbnail: np.ndarray | None = None) -> None:
+        """A finished map into the store (durable) and the memory cache."""
+        self.workbench.put_map(map_id=record.id, image=record.image, model_name=record.model,
+                               model_fingerprint=record.fingerprint, title=record.title,
+                               target_label=record.target_label, amap=record.amap, display=record.display,
+                               thumbnail=thumbnail)
+        self.cache.put(record.id, record)
+
+    def keep_check(self, record: ResultRecord, kind: str, value: dict) -> None:
+        """A map's faithfulness or sanity result, with the map in the store and in memory."""
+        setattr(record, kind, value)
+        self.workbench.set_check(record.id, kind, value)
 
     def close(self) -> None:
         self.jobs.shutdown()
+        with self._store_lock:
+            if self._store is not None:
+                self._store.close()

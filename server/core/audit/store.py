@@ -23,8 +23,10 @@ The verdict travels with the run: ``runs.gate`` holds the gate result (policy na
 sha256, every check with its value, limit and outcome) as JSON, written by :meth:`Store.set_gate`.
 
 Schema versions. 1: runs, results, artefacts. 2: ``runs.gate`` (added in place when a version-1
-store opens; a gate that version 1 kept inside the summary moves into the column). A store newer
-than this Pellucid is refused, never rewritten.
+store opens; a gate that version 1 kept inside the summary moves into the column). 3: ``images``
+and ``maps``, the dashboard's uploaded images and the attribution maps made from them
+(``core/workbench/``), created empty when an older store opens. A store newer than this Pellucid
+is refused, never rewritten.
 """
 
 from __future__ import annotations
@@ -61,7 +63,7 @@ __all__ = [
 ]
 
 DB_NAME = "pellucid.db"
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 MIN_FREE_BYTES = 32 * 1024 * 1024
 QUEUED, RUNNING, DONE, FAILED, CANCELLED, INTERRUPTED = (
     "queued", "running", "done", "failed", "cancelled", "interrupted")
@@ -126,7 +128,38 @@ CREATE TABLE IF NOT EXISTS artefacts (
     size INTEGER NOT NULL,
     created REAL NOT NULL
 );
+CREATE TABLE IF NOT EXISTS images (
+    sha256 TEXT PRIMARY KEY,
+    name TEXT NOT NULL,
+    info TEXT NOT NULL,
+    bytes_hash TEXT NOT NULL,
+    thumb_hash TEXT,
+    created REAL NOT NULL,
+    used REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS images_used ON images (used);
+CREATE TABLE IF NOT EXISTS maps (
+    id TEXT PRIMARY KEY,
+    image TEXT NOT NULL REFERENCES images (sha256) ON DELETE CASCADE,
+    model_name TEXT NOT NULL,
+    model_fingerprint TEXT NOT NULL,
+    method TEXT NOT NULL,
+    record TEXT NOT NULL,
+    map_hash TEXT NOT NULL,
+    display_hash TEXT NOT NULL,
+    thumb_hash TEXT,
+    checks TEXT,
+    created REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS maps_image ON maps (image, model_fingerprint);
 """
+# Every column that names an artefact: an artefact none of them names is an orphan.
+_ARTEFACT_REFERENCES = (
+    "SELECT map_hash FROM results WHERE map_hash IS NOT NULL", "SELECT hash FROM run_artefacts",
+    "SELECT bytes_hash FROM images", "SELECT thumb_hash FROM images WHERE thumb_hash IS NOT NULL",
+    "SELECT map_hash FROM maps", "SELECT display_hash FROM maps",
+    "SELECT thumb_hash FROM maps WHERE thumb_hash IS NOT NULL",
+)
 
 
 def default_data_dir() -> Path:
@@ -344,6 +377,7 @@ class Store:
                     gate = summary.pop("gate")
                     self._db.execute("UPDATE runs SET gate=?, summary=? WHERE id=?",
                                      (json.dumps(gate, allow_nan=True), json.dumps(summary, allow_nan=True), r["id"]))
+        # Version 3 only adds tables (images, maps), which the schema above has just created.
         self._db.execute("UPDATE meta SET value=? WHERE key='schema'", (str(SCHEMA_VERSION),))
 
     def _clean_temporaries(self) -> None:
@@ -399,6 +433,19 @@ class Store:
                 return fn(db)
         except sqlite3.OperationalError as exc:
             raise StoreError(f"the store in {str(self.root)!r} could not save: {exc}") from None
+
+    # For the other tables of this file (core/workbench/): one connection, one lock.
+    write = _write
+
+    def read(self, sql: str, params: tuple = ()) -> list[sqlite3.Row]:
+        """Rows of one query, under the store's lock."""
+        with self._lock:
+            return self._db.execute(sql, params).fetchall()
+
+    @property
+    def lock(self) -> threading.RLock:
+        """Held by a writer that stores artefacts and then the row naming them, so no sweep runs between."""
+        return self._lock
 
     def close(self) -> None:
         with self._lock:
@@ -595,19 +642,30 @@ class Store:
         if run.status == RUNNING and run.owner and _owner_alive(run.owner):
             raise StoreError(f"run {run.id} is still running; cancel it before deleting it")
 
-        def drop(db: sqlite3.Connection) -> list[tuple[str, str]]:
+        def drop(db: sqlite3.Connection) -> None:
             db.execute("DELETE FROM results WHERE run_id=?", (run.id,))
             db.execute("DELETE FROM run_artefacts WHERE run_id=?", (run.id,))
             db.execute("DELETE FROM runs WHERE id=?", (run.id,))
-            orphans = db.execute(
-                "SELECT hash, kind FROM artefacts WHERE hash NOT IN (SELECT map_hash FROM results WHERE map_hash "
-                "IS NOT NULL) AND hash NOT IN (SELECT hash FROM run_artefacts)").fetchall()
+
+        return self.delete_rows(drop)
+
+    def delete_rows(self, drop: Any, *, grace_seconds: float = 0.0) -> int:
+        """Run ``drop(db)`` in one transaction, then remove the artefacts no row names any more.
+
+        ``grace_seconds`` spares artefacts younger than that: one may have been written a moment ago
+        for a row not yet inserted (an audit stores a map's array, then its result). Returns files removed.
+        """
+        def sweep(db: sqlite3.Connection) -> list[tuple[str, str]]:
+            drop(db)
+            named = " AND ".join(f"hash NOT IN ({q})" for q in _ARTEFACT_REFERENCES)
+            orphans = db.execute(f"SELECT hash, kind FROM artefacts WHERE {named} AND created <= ?",
+                                 (time.time() - grace_seconds,)).fetchall()
             for row in orphans:
                 db.execute("DELETE FROM artefacts WHERE hash=?", (row["hash"],))
             return [(r["hash"], r["kind"]) for r in orphans]
 
         removed = 0
-        for digest, kind in self._write(drop):
+        for digest, kind in self._write(sweep):
             try:
                 self._artefact_path(digest, kind).unlink()
                 removed += 1

@@ -1,12 +1,18 @@
-"""Images: upload, the browsable image folder, the demo samples, the input as a model sees it."""
+"""Images: upload, the stored images (recent first, with thumbnails and their maps), the browsable
+image folder, the demo samples, the input as a model sees it.
+
+Every image opened here is kept in the store (``Workspace.add_image``), so its id stays valid
+across restarts; ``DELETE /api/images/{id}`` forgets it and its maps."""
 
 from __future__ import annotations
 
 import unicodedata
 from pathlib import Path
+from urllib.parse import quote
 
 import numpy as np
 from fastapi import APIRouter, Depends, Query, Request
+from fastapi.responses import Response
 from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import UploadFile
 
@@ -14,12 +20,15 @@ from pellucid.core.confine import is_inside
 from pellucid.core.errors import BadParameterError, ImageDecodeError, ImageTooLargeError, NotFoundError
 from pellucid.core.model.preprocess import IntakeImage, read_image
 from pellucid.core.views import render
+from pellucid.core.workbench import StoredImage
 from pellucid.web.deps import get_settings, get_workspace
 from pellucid.web.routers._media import data_url
 from pellucid.web.schemas import (
     FolderEntry,
     FolderListing,
     ImageInfo,
+    MapList,
+    MapSummary,
     OpenFromFolder,
     OpenSample,
     PreparedView,
@@ -56,10 +65,27 @@ def _decode(ws: Workspace, settings: Settings, source, *, name: str | None = Non
         return read_image(source, name=name, max_bytes=settings.max_upload_bytes, max_pixels=settings.max_pixels)
 
 
-def image_info(img: IntakeImage) -> ImageInfo:
+def _file_bytes(path: Path, settings: Settings) -> bytes:
+    """A confined file's bytes, refused before reading when it is over the upload limit."""
+    size = path.stat().st_size
+    if size > settings.max_upload_bytes:
+        raise _too_big(size, settings.max_upload_bytes)
+    return path.read_bytes()
+
+
+def _open_file(ws: Workspace, settings: Settings, path: Path) -> ImageInfo:
+    data = _file_bytes(path, settings)
+    img = _decode(ws, settings, data, name=path.name)
+    return image_info(ws.add_image(img, data))
+
+
+def image_info(img: IntakeImage | StoredImage) -> ImageInfo:
+    stored = isinstance(img, StoredImage)
     return ImageInfo(
         id=img.sha256, name=img.name, original_size=list(img.original_size), original_mode=img.original_mode,
-        format=img.format, notes=list(img.notes),
+        format=img.format, notes=list(img.notes), link=f"/image?image={img.sha256}",
+        thumbnail=f"/api/images/{img.sha256}/thumbnail.png", created=img.created if stored else None,
+        used=img.used if stored else None,
     )
 
 
@@ -121,18 +147,54 @@ async def upload_image(
     if len(data) > limit:
         raise _too_big(len(data), limit)
     img = await run_in_threadpool(_decode, ws, settings, data, name=name)
-    ws.add_image(img)
-    return image_info(img)
+    stored = await run_in_threadpool(ws.add_image, img, data)
+    return image_info(stored)
 
 
-@router.get("/images", response_model=list[ImageInfo], summary="Images this server holds now, newest first")
-def list_images(ws: Workspace = Depends(get_workspace)) -> list[ImageInfo]:
-    return [image_info(img) for img in ws.images()]
+@router.get("/images", response_model=list[ImageInfo], summary="Stored images, most recently used first")
+def list_images(limit: int = Query(48, ge=1, le=500), ws: Workspace = Depends(get_workspace)) -> list[ImageInfo]:
+    return [image_info(img) for img in ws.images(limit=limit)]
 
 
 @router.get("/images/{image_id}", response_model=ImageInfo, summary="What the server knows about an image")
 def get_image(image_id: str, ws: Workspace = Depends(get_workspace)) -> ImageInfo:
-    return image_info(ws.image(image_id))
+    return image_info(ws.stored_image(image_id))
+
+
+@router.delete("/images/{image_id}", summary="Forget a stored image and every map made from it")
+def forget_image(image_id: str, ws: Workspace = Depends(get_workspace)) -> dict:
+    stored = ws.stored_image(image_id)
+    removed = ws.workbench.forget_image(stored.sha256)
+    return {"deleted": stored.sha256, "files_removed": removed}
+
+
+@router.get("/images/{image_id}/thumbnail.png", response_class=Response,
+            responses={200: {"content": {"image/png": {}}}}, summary="A small picture of a stored image")
+def image_thumbnail(image_id: str, ws: Workspace = Depends(get_workspace)) -> Response:
+    stored = ws.stored_image(image_id)
+    data = ws.workbench.thumbnail(stored)
+    if data is None:
+        raise NotFoundError(f"image {image_id[:16]!r} has no thumbnail")
+    return Response(data, media_type="image/png", headers={"Cache-Control": "private, max-age=86400"})
+
+
+@router.get("/images/{image_id}/maps", response_model=MapList,
+            summary="The maps made for a stored image (of one model when given), oldest first")
+def image_maps(image_id: str, model: str | None = Query(None), ws: Workspace = Depends(get_workspace)) -> MapList:
+    stored = ws.stored_image(image_id)
+    fingerprint = ws.model(model).fingerprint if model else None
+    maps = ws.workbench.maps_for(stored.sha256, model_fingerprint=fingerprint)
+    return MapList(image=stored.sha256, model=model, maps=[map_summary(m) for m in maps])
+
+
+def map_summary(m) -> MapSummary:
+    d = m.summary()
+    return MapSummary(**d, thumbnail=f"/api/results/{m.id}/thumbnail.png", link=map_link(m))
+
+
+def map_link(m) -> str:
+    """The image page with this map open: a link to send to a reviewer."""
+    return f"/image?model={quote(m.model_name)}&image={m.image}&map={m.id}"
 
 
 @router.get("/images/{image_id}/prepared", response_model=PreparedView,
@@ -158,6 +220,7 @@ def _root(settings: Settings) -> Path:
 
 @router.get("/folder", response_model=FolderListing, summary="Browse the image folder given at start")
 def browse_folder(path: str = Query("", description="sub-folder, relative to the image folder"),
+                  folders_only: bool = Query(False, description="list sub-folders only (choosing an audit folder)"),
                   settings: Settings = Depends(get_settings)) -> FolderListing:
     root = _root(settings)
     where = resolve_inside(root, path)
@@ -179,7 +242,7 @@ def browse_folder(path: str = Query("", description="sub-folder, relative to the
         rel = f"{where.relative_to(base).as_posix()}/{rel}" if where != base else rel
         if real.is_dir():
             entries.append(FolderEntry(name=child.name, path=rel, kind="folder"))
-        elif real.is_file() and child.suffix.lower() in IMAGE_SUFFIXES:
+        elif not folders_only and real.is_file() and child.suffix.lower() in IMAGE_SUFFIXES:
             entries.append(FolderEntry(name=child.name, path=rel, kind="image", size=real.stat().st_size))
         if len(entries) >= _MAX_LISTING:
             truncated = True
@@ -195,9 +258,7 @@ def open_from_folder(body: OpenFromFolder, ws: Workspace = Depends(get_workspace
     where = resolve_inside(_root(settings), body.path)
     if not where.is_file():
         raise BadParameterError(f"{body.path!r} is a folder, not an image")
-    img = _decode(ws, settings, where)
-    ws.add_image(img)
-    return image_info(img)
+    return _open_file(ws, settings, where)
 
 
 def _sample_files(folder: Path) -> list[Path]:
@@ -232,6 +293,4 @@ def open_sample(body: OpenSample, ws: Workspace = Depends(get_workspace),
     where = resolve_inside(folder, body.name)
     if not where.is_file():
         raise BadParameterError(f"{body.name!r} is not an image file")
-    img = _decode(ws, settings, where)
-    ws.add_image(img)
-    return image_info(img)
+    return _open_file(ws, settings, where)

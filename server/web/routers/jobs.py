@@ -1,14 +1,18 @@
 """Attribution maps as jobs: list the methods, start / poll / cancel a job, fetch its result.
 
-A job runs on the workspace's job pool (never on the event loop). Its result is cached by
-(model fingerprint, image sha256, method, validated parameters + target), so asking again for
-the same map is served at once.
+A job runs on the workspace's job pool (never on the event loop). Its result id is derived from
+(model fingerprint, image sha256, method, validated parameters + target); the finished map is kept
+in the store (``core/workbench/``), so asking again for the same map is served at once, and
+``/api/results/{id}`` (and the link each result carries) still works after a restart. A job is
+bound to the image and model it was started for: its status names them, and its map is stored
+under its own image whatever the page shows meanwhile.
 """
 
 from __future__ import annotations
 
 import hashlib
 import json
+from urllib.parse import quote
 
 import numpy as np
 from fastapi import APIRouter, Depends, Query, Request
@@ -28,9 +32,21 @@ from pellucid.core.cache import result_key
 from pellucid.core.errors import BadParameterError, NotFoundError
 from pellucid.core.jobs import Job
 from pellucid.core.views import render
+from pellucid.core.workbench import costs, reading
 from pellucid.web.deps import get_workspace
+from pellucid.web.job_listing import job_list
 from pellucid.web.routers._media import data_url, rounded_rows
-from pellucid.web.schemas import CAUTION, JobRequest, JobStatus, MethodList, Ranking, ResultResponse, SharedScale
+from pellucid.web.schemas import (
+    CAUTION,
+    CheckEstimateResponse,
+    JobList,
+    JobRequest,
+    JobStatus,
+    MethodList,
+    Ranking,
+    ResultResponse,
+    SharedScale,
+)
 from pellucid.web.workspace import ResultRecord, Workspace
 
 router = APIRouter(prefix="/api", tags=["attribution"])
@@ -55,10 +71,25 @@ def _result_id(key: tuple) -> str:
 
 def job_status(job: Job, *, cached: bool = False) -> JobStatus:
     d = job.to_dict()
+    meta = job.meta
+    seconds_left, left_from = d["seconds_left"], "rate" if d["seconds_left"] is not None else None
+    estimate = meta.get("estimate_seconds")
+    if seconds_left is None and job.state == "running" and estimate is not None:
+        # Before the first unit finishes there is no rate to go by: the estimate less the time spent.
+        seconds_left, left_from = max(0.0, estimate - d["elapsed"]), "estimate"
+    result_id = meta.get("result_id") if job.state == "done" else None
+    link = None
+    if meta.get("image"):
+        link = f"/image?model={quote(meta.get('model') or '')}&image={meta['image']}"
+        if result_id:
+            link += f"&map={result_id}"
     return JobStatus(
         id=d["id"], kind=d["kind"], description=d["description"], state=d["state"], done=d["done"],
-        total=d["total"], fraction=d["fraction"], seconds_left=d["seconds_left"], elapsed=d["elapsed"],
-        error=d["error"], result_id=job.meta.get("result_id") if job.state == "done" else None, cached=cached,
+        total=d["total"], unit=reading.progress_unit(job.kind, phase=meta.get("phase")), fraction=d["fraction"],
+        seconds_left=seconds_left, left_from=left_from, estimate_seconds=estimate, elapsed=d["elapsed"],
+        error=d["error"], result_id=result_id, cached=cached, lane=d.get("lane") or "interactive",
+        created=job.created, model=meta.get("model"), image=meta.get("image"), image_name=meta.get("image_name"),
+        method=meta.get("method"), run_id=meta.get("run_id"), phase=meta.get("phase"), link=link,
     )
 
 
@@ -82,8 +113,9 @@ def start_job(body: JobRequest, request: Request, ws: Workspace = Depends(get_wo
                      params={**params, "target": with_target})
     rid = _result_id(key)
     description = f"{method.title} · {lm.name} · {image.name}"
-    meta = {"result_id": rid, "model": lm.name, "image": image.sha256, "method": method.name}
-    if ws.cache.get(rid) is not None:
+    meta = {"result_id": rid, "model": lm.name, "image": image.sha256, "image_name": image.name,
+            "method": method.name}
+    if ws.has_result(rid):
         job = ws.jobs.submit(method.name, lambda progress, cancel: rid, description=description, meta=meta,
                              client=client)
         return job_status(job, cached=True)
@@ -95,13 +127,16 @@ def start_job(body: JobRequest, request: Request, ws: Workspace = Depends(get_wo
             method.name, lm.module, prep.tensor, target=with_target, params=params,
             output_kind=lm.output_kind, normalization=normalization, progress=progress, cancel=cancel,
         )
-        ws.cache.put(rid, ResultRecord(
+        record = ResultRecord(
             id=rid, model=lm.name, fingerprint=lm.fingerprint, image=image.sha256, image_name=image.name,
             method=method.name, title=method.title, target=amap.target, target_label=lm.labels[amap.target],
             amap=amap, display=prep.display,
-        ))
+        )
+        # Stored under the image it was computed for, whatever the page shows now.
+        ws.keep_result(record, thumbnail=_thumbnail(record))
         return rid
 
+    meta["estimate_seconds"] = ws.job_estimate(lm, method.name, params).seconds
     job = ws.jobs.submit(method.name, run, description=description, meta=meta, client=client)
     return job_status(job)
 
@@ -111,6 +146,12 @@ def _job(ws: Workspace, job_id: str) -> Job:
     if job is None:
         raise NotFoundError(f"no job with id {job_id[:24]!r} on this server; start one with POST /api/jobs")
     return job
+
+
+@router.get("/jobs", response_model=JobList,
+            summary="Every job this server holds (maps, checks, audits): what it works on, progress, time left")
+def list_jobs(request: Request, ws: Workspace = Depends(get_workspace)) -> JobList:
+    return job_list(ws, request.app.state, status_of=job_status)
 
 
 @router.get("/jobs/{job_id}", response_model=JobStatus, summary="Poll a job: state, progress, time left")
@@ -125,11 +166,31 @@ def cancel_job(job_id: str, ws: Workspace = Depends(get_workspace)) -> JobStatus
 
 
 def _value_label(record: ResultRecord) -> str:
-    if record.method == "occlusion":
-        kind = record.amap.params.get("output", None)
-        return f"drop in the probability of '{record.target_label}' when this area is hidden" if kind != "logit" \
-            else f"drop in the score of '{record.target_label}'"
-    return f"{record.title} attribution for '{record.target_label}'"
+    return reading.map_unit(record.method, record.amap.params, record.target_label)
+
+
+def _warnings(record: ResultRecord) -> str | None:
+    """The method's own warning and, for a map too flat to read, the flat-map sentence."""
+    own = record.amap.warning
+    flat = reading.flat_map_warning(record.amap.map, method_title=record.title)
+    if own and flat and "zero everywhere" in flat:
+        flat = None  # the method's own sentence (Grad-CAM's all-zero map) already says so, and why
+    return " ".join(w[0].upper() + w[1:] + ("" if w.endswith(".") else ".") for w in (own, flat) if w) or None
+
+
+def _thumbnail(record: ResultRecord) -> np.ndarray:
+    """A small overlay of the map on its input, for the lists of maps."""
+    from PIL import Image
+
+    lo, hi = magnitude_range(record.amap.map, signed=record.amap.signed)
+    picture = render.overlay(record.display, record.amap.map, alpha=0.6, cmap=_cmap(record), vmin=lo,
+                             vmax=hi if hi > lo else lo + 1.0)
+    small = Image.fromarray(picture)
+    small.thumbnail((96, 96), Image.Resampling.NEAREST)
+    if max(small.size) < 64:  # tiny inputs are scaled up so a thumbnail can be seen
+        k = -(-64 // max(small.size))
+        small = small.resize((small.width * k, small.height * k), Image.Resampling.NEAREST)
+    return np.asarray(small)
 
 
 def magnitude_range(values: np.ndarray, *, signed: bool) -> tuple[float, float]:
@@ -176,19 +237,35 @@ def get_result(
     cmap = _cmap(record)
     coloured = render.colorize(amap.map, cmap=cmap, vmin=lo, vmax=hi)
     label = _value_label(record)
+    unit = reading.unit_short(record.method, amap.params)
     extras = {k: v for k, v in amap.extras.items() if isinstance(v, (str, int, float, bool, type(None), list, dict))}
     return ResultResponse(
-        id=record.id, model=record.model, fingerprint=record.fingerprint, image=record.image,
+        id=record.id, link=map_link_of(record), model=record.model, fingerprint=record.fingerprint, image=record.image,
         image_name=record.image_name, method=record.method, title=record.title, target=record.target,
         target_label=record.target_label, target_source=amap.target_source, signed=amap.signed,
         engine=amap.extras.get("engine"), approximate=amap.extras.get("engine") == "approximate",
-        params=amap.params, extras=extras, warning=amap.warning, seconds=amap.seconds,
-        n_forwards=amap.n_forwards, n_backwards=amap.n_backwards, value_label=label, vmin=lo, vmax=hi, cmap=cmap,
+        params=amap.params, extras=extras, warning=_warnings(record), seconds=amap.seconds,
+        n_forwards=amap.n_forwards, n_backwards=amap.n_backwards, value_label=label, unit=unit, vmin=lo, vmax=hi,
+        cmap=cmap,
         image_png=data_url(render.encode_png(record.display)), map_png=data_url(render.encode_png(coloured)),
-        colorbar=data_url(render.colorbar_png(vmin=lo, vmax=hi, cmap=cmap, label=label[:80])),
+        colorbar=data_url(render.colorbar_png(vmin=lo, vmax=hi, cmap=cmap, label=unit)),
         values=rounded_rows(amap.map, digits=4), caution=CAUTION,
         faithfulness=record.faithfulness, sanity=record.sanity,
     )
+
+
+def map_link_of(record: ResultRecord) -> str:
+    return f"/image?model={quote(record.model)}&image={record.image}&map={record.id}"
+
+
+@router.get("/results/{result_id}/thumbnail.png", response_class=Response,
+            responses={200: {"content": {"image/png": {}}}}, summary="A small picture of a stored map over its image")
+def get_thumbnail(result_id: str, ws: Workspace = Depends(get_workspace)) -> Response:
+    stored = ws.workbench.get_map(result_id)
+    data = ws.workbench.map_thumbnail(stored) if stored is not None else None
+    if data is None:
+        data = render.encode_png(_thumbnail(ws.result(result_id)))
+    return Response(data, media_type="image/png", headers={"Cache-Control": "private, max-age=86400"})
 
 
 @router.get("/results/{result_id}/overlay.png", response_class=Response,
@@ -225,7 +302,8 @@ def shared_scale(results: list[str] = Query(..., description="result ids"),
 def _follow_up(ws: Workspace, result_id: str, kind: str, compute) -> JobStatus:
     """A job that adds ``kind`` (faithfulness or sanity) to a stored result; served at once when present."""
     record = ws.result(result_id)
-    meta = {"result_id": record.id, "model": record.model, "image": record.image, "method": record.method}
+    meta = {"result_id": record.id, "model": record.model, "image": record.image, "image_name": record.image_name,
+            "method": record.method}
     description = f"{kind} of {record.title} · {record.model} · {record.image_name}"
     if getattr(record, kind) is not None:
         return job_status(ws.jobs.submit(kind, lambda progress, cancel: record.id, description=description,
@@ -234,12 +312,36 @@ def _follow_up(ws: Workspace, result_id: str, kind: str, compute) -> JobStatus:
     if lm.fingerprint != record.fingerprint:
         raise NotFoundError(f"model {record.model!r} changed since this result was made; compute the map again")
     prep = ws.prepared(lm, record.image)
+    meta["estimate_seconds"] = _check_estimate(ws, lm, record, kind).seconds
 
     def run(progress, cancel) -> str:
-        setattr(record, kind, compute(lm, prep, record, progress, cancel))
+        ws.keep_check(record, kind, compute(lm, prep, record, progress, cancel))
         return record.id
 
     return job_status(ws.jobs.submit(kind, run, description=description, meta=meta))
+
+
+def _check_estimate(ws: Workspace, lm, record: ResultRecord, kind: str) -> costs.CheckEstimate:
+    per_forward = ws.forward_seconds(lm)
+    if kind == "faithfulness":
+        return costs.faithfulness_estimate(lm.input_shape[1:], seconds_per_forward=per_forward)
+    one_map = ws.job_estimate(lm, record.method, dict(record.amap.params))
+    return costs.sanity_estimate(lm.module, map_forwards=one_map.forwards, map_seconds=one_map.seconds)
+
+
+@router.get("/results/{result_id}/estimate", response_model=CheckEstimateResponse,
+            summary="What a map's faithfulness score or weight-randomisation check will cost, before it starts")
+def estimate_check(result_id: str,
+                   check: str = Query(..., description="faithfulness or sanity"),
+                   ws: Workspace = Depends(get_workspace)) -> CheckEstimateResponse:
+    if check not in ("faithfulness", "sanity"):
+        raise BadParameterError(f"check must be 'faithfulness' or 'sanity'; received {check!r}")
+    record = ws.result(result_id)
+    lm = ws.model(record.model)
+    est = _check_estimate(ws, lm, record, check)
+    return CheckEstimateResponse(result_id=record.id, check=check, units=est.units, count=est.count,
+                                 forwards=est.forwards, seconds=est.seconds,
+                                 done=getattr(record, check) is not None)
 
 
 @router.post("/results/{result_id}/faithfulness", response_model=JobStatus, status_code=202,

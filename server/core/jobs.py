@@ -9,6 +9,10 @@ A job moves through explicit states::
 Any other transition is a programming error and raises RuntimeError. The manager keeps a bounded
 history so a long-running server does not grow without limit.
 
+Time left comes from the rate of the current *phase*: a job whose count starts again (an audit
+goes from files read to images mapped to clusters tested) measures its rate afresh, so the
+minutes spent reading files do not stretch the estimate for the images.
+
 Jobs run in *lanes*: each lane has its own thread pool, so a folder audit never holds a thread
 that an interactive map is waiting for. A lane bounds how many jobs may wait (beyond that,
 ``submit`` raises :class:`BusyError` with a suggested wait) and how many jobs one client may
@@ -95,6 +99,15 @@ class Job:
     lane: str = INTERACTIVE
     client: str | None = None
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
+    # (time, units done) where the current phase's rate is measured from
+    _rate_from: tuple[float, int] | None = field(default=None, repr=False)
+
+    def report(self, done: int, total: int) -> None:
+        """Progress from the job's function; a count that goes back starts a new phase."""
+        done, total = int(done), int(total)
+        if self._rate_from is None or done < self.done:
+            self._rate_from = (time.time(), done)
+        self.done, self.total = done, total
 
     def _move(self, state: str) -> None:
         if state not in _ALLOWED[self.state]:
@@ -110,10 +123,12 @@ class Job:
     @property
     def seconds_left(self) -> float | None:
         """Estimated from the rate so far; None until there is a rate to go by."""
-        if self.state != RUNNING or not self.started or self.done <= 0 or not self.total:
+        if self.state != RUNNING or not self.total:
             return None
-        elapsed = time.time() - self.started
-        return max(0.0, elapsed / self.done * (self.total - self.done))
+        since, base = self._rate_from or (self.started or time.time(), 0)
+        if self.done <= base:
+            return None
+        return max(0.0, (time.time() - since) / (self.done - base) * (self.total - self.done))
 
     @property
     def finished_state(self) -> bool:
@@ -130,6 +145,9 @@ class Job:
             "fraction": self.fraction,
             "seconds_left": self.seconds_left,
             "elapsed": ((self.finished or time.time()) - self.started) if self.started else 0.0,
+            "created": self.created,
+            "started": self.started,
+            "finished": self.finished,
             "error": self.error,
             "meta": self.meta,
             "lane": self.lane,
@@ -215,12 +233,10 @@ class JobManager:
                 return
             job._move(RUNNING)
             job.started = time.time()
-
-        def progress(done: int, total: int) -> None:
-            job.done, job.total = int(done), int(total)
+            job._rate_from = (job.started, 0)
 
         try:
-            result = fn(progress, job.cancel_token)
+            result = fn(job.report, job.cancel_token)
         except Cancelled:
             with job._lock:
                 job._move(CANCELLED)
@@ -234,13 +250,12 @@ class JobManager:
                 job.meta["traceback"] = traceback.format_exc(limit=8)
                 job._move(FAILED)
         else:
+            # Work that finished before it saw a late cancel is done: its result (a stored map, a
+            # finished audit run) exists, and calling it cancelled would contradict the store.
             with job._lock:
-                if job.cancel_token.cancelled:
-                    job._move(CANCELLED)
-                else:
-                    job.result = result
-                    job.done = job.total = max(job.total, 1)
-                    job._move(DONE)
+                job.result = result
+                job.done = job.total = max(job.total, 1)
+                job._move(DONE)
         finally:
             job.finished = time.time()
             if job.started is not None:

@@ -1,0 +1,96 @@
+"""Every job the server holds, as ``GET /api/jobs`` and the jobs panel show it.
+
+A job is described by what it works on (model, image or audit run), its progress in the unit its
+work counts (patch positions, masks, path points, maps, images; ``core/workbench/reading.py``),
+the time left and where its subject or result is shown. Audit jobs keep their phase and run id in
+a live record beside the job (written by the audits router); this module only reads it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+from urllib.parse import quote
+
+from pellucid.core.errors import PellucidError
+from pellucid.core.jobs import QUEUED, RUNNING, Job
+from pellucid.core.workbench.reading import progress_unit
+from pellucid.web.schemas import JobList, JobStatus
+from pellucid.web.workspace import Workspace
+
+__all__ = ["audit_live_records", "job_list"]
+
+
+def audit_live_records(ws: Workspace, app_state: Any) -> dict[str, dict]:
+    """Phase and run id of each audit job, by job id (the audits router keeps them)."""
+    records: dict[str, dict] = {}
+    records.update(getattr(app_state, "audit_live", None) or {})
+    records.update(getattr(ws, "audit_live", None) or {})
+    return records
+
+
+def _image_link(model: str | None, image: str | None, result_id: str | None) -> str | None:
+    if not image:
+        return None
+    parts = [f"model={quote(model)}"] if model else []
+    parts.append(f"image={quote(image)}")
+    if result_id:
+        parts.append(f"map={quote(result_id)}")
+    return "/image?" + "&".join(parts)
+
+
+def _image_name(ws: Workspace, sha256: str | None) -> str | None:
+    """The name of an image the server holds in memory (no store query on every poll)."""
+    if not sha256:
+        return None
+    held = ws.image_cache.get(sha256)
+    return held.name if held is not None else None
+
+
+def _audit_model(app_state: Any, run_id: str | None, cache: dict[str, str | None]) -> str | None:
+    if not run_id:
+        return None
+    if run_id not in cache:
+        store = getattr(app_state, "audit_store", None)
+        try:
+            cache[run_id] = store.get_run(run_id).model_name if store is not None else None
+        except PellucidError:  # deleted meanwhile: the job still lists, without its model
+            cache[run_id] = None
+    return cache[run_id]
+
+
+def describe(job: Job, base: JobStatus, *, ws: Workspace, live: dict | None, app_state: Any,
+             models_of_runs: dict[str, str | None]) -> JobStatus:
+    """``base`` (the job's own status) with what it works on, its unit and its link filled in.
+
+    Fields the base already carries are kept: the router that started the job knows best.
+    """
+    extra: dict[str, Any] = {"lane": job.lane, "created": job.created, "started": job.started,
+                             "finished": job.finished}
+    given = base.model_dump(exclude_unset=True)
+    if job.kind == "audit":
+        phase = (live or {}).get("phase")
+        run_id = (live or {}).get("run_id") or given.get("run_id")
+        # The live record is the truth about an audit's phase: it decides what the count counts.
+        given.pop("unit", None)
+        given.pop("phase", None)
+        extra.update(phase=phase, run_id=run_id, unit=progress_unit("audit", phase=phase),
+                     model=_audit_model(app_state, run_id, models_of_runs),
+                     link=f"/audits?run={quote(run_id)}" if run_id else None)
+    else:
+        meta = job.meta
+        model, image = meta.get("model"), meta.get("image")
+        result_id = meta.get("result_id") if job.state == "done" else None
+        extra.update(unit=progress_unit(job.kind), model=model, image=image, image_name=_image_name(ws, image),
+                     method=meta.get("method"), link=_image_link(model, image, result_id))
+    return base.model_copy(update={k: v for k, v in extra.items() if k not in given or given[k] is None})
+
+
+def job_list(ws: Workspace, app_state: Any, *, status_of: Callable[[Job], JobStatus]) -> JobList:
+    """All jobs: queued and running first, then finished ones, newest first within each."""
+    live = audit_live_records(ws, app_state)
+    models_of_runs: dict[str, str | None] = {}
+    jobs = sorted(ws.jobs.list(), key=lambda j: (j.state not in (QUEUED, RUNNING), -j.created))
+    rows = [describe(j, status_of(j), ws=ws, live=live.get(j.id), app_state=app_state,
+                     models_of_runs=models_of_runs) for j in jobs]
+    return JobList(jobs=rows, active=sum(1 for j in jobs if j.state in (QUEUED, RUNNING)))

@@ -652,14 +652,16 @@ class Store:
     def delete_rows(self, drop: Any, *, grace_seconds: float = 0.0) -> int:
         """Run ``drop(db)`` in one transaction, then remove the artefacts no row names any more.
 
-        ``grace_seconds`` spares artefacts younger than that: one may have been written a moment ago
-        for a row not yet inserted (an audit stores a map's array, then its result). Returns files removed.
+        ``drop`` may return the hashes its rows named: those go whatever their age. ``grace_seconds``
+        spares other artefacts younger than that: one may have been written a moment ago for a row
+        not yet inserted (an audit stores a map's array, then its result). Returns files removed.
         """
         def sweep(db: sqlite3.Connection) -> list[tuple[str, str]]:
-            drop(db)
+            named_by_dropped = list(drop(db) or ())
             named = " AND ".join(f"hash NOT IN ({q})" for q in _ARTEFACT_REFERENCES)
-            orphans = db.execute(f"SELECT hash, kind FROM artefacts WHERE {named} AND created <= ?",
-                                 (time.time() - grace_seconds,)).fetchall()
+            marks = ",".join("?" * len(named_by_dropped)) or "NULL"
+            orphans = db.execute(f"SELECT hash, kind FROM artefacts WHERE {named} AND (created <= ? OR hash IN "
+                                 f"({marks}))", (time.time() - grace_seconds, *named_by_dropped)).fetchall()
             for row in orphans:
                 db.execute("DELETE FROM artefacts WHERE hash=?", (row["hash"],))
             return [(r["hash"], r["kind"]) for r in orphans]

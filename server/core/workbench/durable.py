@@ -199,9 +199,14 @@ class Workbench:
         if self.image(sha256) is None:
             raise NotFoundError(f"no image with id {sha256[:16]!r} in the store")
 
-        def drop(db: Any) -> None:
+        def drop(db: Any) -> list[str]:
+            named = [h for row in db.execute("SELECT bytes_hash, thumb_hash FROM images WHERE sha256=?", (sha256,))
+                     for h in row if h]
+            named += [h for row in db.execute("SELECT map_hash, display_hash, thumb_hash FROM maps WHERE image=?",
+                                              (sha256,)) for h in row if h]
             db.execute("DELETE FROM maps WHERE image=?", (sha256,))
             db.execute("DELETE FROM images WHERE sha256=?", (sha256,))
+            return named
 
         with self.store.lock:
             return self.store.delete_rows(drop, grace_seconds=_SWEEP_GRACE)

@@ -41,6 +41,9 @@ AUDIT_PHASE_UNITS: dict[str, str] = {
 # A map whose values span less than this share of its largest magnitude is called flat (our choice:
 # one per cent is below what a colour scale shows as different colours).
 FLAT_RELATIVE_RANGE = 0.01
+# Methods whose values are probabilities or score drops (0–1 or a few score units): below this size a
+# value is float rounding, not evidence (our choice: float32 keeps about 7 significant digits).
+ROUNDING_FLOOR = {"occlusion": 1e-6, "rise": 1e-6}
 
 
 def progress_unit(kind: str, *, phase: str | None = None) -> str:
@@ -89,8 +92,10 @@ def unit_short(method: str, params: dict[str, Any]) -> str:
     return f"{method} attribution"
 
 
-def flat_map_warning(values: np.ndarray, *, method_title: str) -> str | None:
-    """A sentence when the map's values hardly differ (so its colours carry no information), else None."""
+def flat_map_warning(values: np.ndarray, *, method_title: str, method: str | None = None) -> str | None:
+    """A sentence when the map's values hardly differ (so its colours carry no information), else None.
+
+    ``method`` (a registry name) lets values under its rounding floor count as zero."""
     v = np.asarray(values, dtype=np.float64)
     finite = v[np.isfinite(v)]
     if finite.size == 0:
@@ -98,9 +103,9 @@ def flat_map_warning(values: np.ndarray, *, method_title: str) -> str | None:
     lo, hi = float(finite.min()), float(finite.max())
     scale = max(abs(lo), abs(hi))
     spread = hi - lo
-    if scale == 0.0:
-        return (f"the {method_title} map is zero everywhere: it shows no evidence for this class; try another "
-                "method or class")
+    if scale <= ROUNDING_FLOOR.get(method or "", 0.0):
+        return (f"the {method_title} map is zero everywhere (to rounding): it shows no evidence for this class; "
+                "try another method or class")
     if spread <= FLAT_RELATIVE_RANGE * scale:
         return (f"the {method_title} map is nearly flat: its values span only {spread:.3g} (from {lo:.4g} to "
                 f"{hi:.4g}, under {FLAT_RELATIVE_RANGE:.0%} of their size), so its colours say almost nothing about "

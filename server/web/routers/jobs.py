@@ -172,7 +172,7 @@ def _value_label(record: ResultRecord) -> str:
 def _warnings(record: ResultRecord) -> str | None:
     """The method's own warning and, for a map too flat to read, the flat-map sentence."""
     own = record.amap.warning
-    flat = reading.flat_map_warning(record.amap.map, method_title=record.title)
+    flat = reading.flat_map_warning(record.amap.map, method_title=record.title, method=record.method)
     if own and flat and "zero everywhere" in flat:
         flat = None  # the method's own sentence (Grad-CAM's all-zero map) already says so, and why
     return " ".join(w[0].upper() + w[1:] + ("" if w.endswith(".") else ".") for w in (own, flat) if w) or None

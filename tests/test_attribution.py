@@ -188,7 +188,7 @@ def test_list_methods_is_json_and_complete():
     assert names == method_names()
     ig = next(m for m in described if m["name"] == "integrated_gradients")
     assert {p["name"] for p in ig["params"]} >= {"baseline", "steps", "rule"}
-    assert ig["cost_at_defaults_224"] == 3 * 65
+    assert ig["cost_at_defaults_224"] == 3 * 33  # 32 trapezoid steps = 33 points, forward + backward
     rise = next(m for m in described if m["name"] == "rise")
     assert rise["stochastic"] and not rise["uses_gradients"]
     assert next(m for m in described if m["name"] == "gradcam")["needs_conv_layer"]

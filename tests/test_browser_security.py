@@ -139,11 +139,20 @@ def _upload_statuses(page) -> list[int]:
     return statuses
 
 
+def _await_answer(page, statuses: list[int], *, seconds: float = 15.0) -> None:
+    """Let the browser deliver the upload's answer (a loaded machine may take more than a moment)."""
+    waited = 0.0
+    while not statuses and waited < seconds:
+        page.wait_for_timeout(100)
+        waited += 0.1
+    page.wait_for_timeout(200)  # a second answer, if one came, would arrive by now
+
+
 def test_upload_from_another_site_is_refused(page, pellucid: str, other_origin: str) -> None:
     statuses = _upload_statuses(page)
     page.goto(other_origin + "/")
     page.evaluate(_UPLOAD_JS, [pellucid, _PNG_B64])
-    page.wait_for_timeout(300)
+    _await_answer(page, statuses)
     assert statuses == [403], statuses  # the browser sent it without asking; the server said no
     assert "planted.png" not in _stored(pellucid)
     SCREENSHOTS.mkdir(parents=True, exist_ok=True)
@@ -155,7 +164,7 @@ def test_upload_from_the_same_machine_under_another_name_is_refused(page, pelluc
     statuses = _upload_statuses(page)
     page.goto(f"http://localhost:{port}/")  # Pellucid's own page, but the origin http://localhost:PORT
     page.evaluate(_UPLOAD_JS, [pellucid, _PNG_B64])
-    page.wait_for_timeout(300)
+    _await_answer(page, statuses)
     assert statuses == [403], statuses
     assert "planted.png" not in _stored(pellucid)
 

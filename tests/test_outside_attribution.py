@@ -156,7 +156,8 @@ def test_integrated_gradients_equal_the_riemann_sum(case, rule):
     baseline = black_by_hand(x, norm)
     reference = integrated_gradients_by_hand(model, x, baseline, target, 16, rule)
     amap = compute_attribution("integrated_gradients", model, x, target=target, normalization=norm,
-                               params={"steps": 16, "rule": rule, "baseline": "black", "batch_size": 5})
+                               params={"steps": 16, "max_steps": 16, "rule": rule, "baseline": "black",
+                                       "batch_size": 5})
     assert_close(amap.raw, reference.numpy(), f"IG per channel ({rule})")
     assert_close(amap.map, reference.sum(dim=0).numpy(), f"IG map ({rule})")
 
@@ -221,16 +222,29 @@ def test_rise_is_the_mask_weighted_probability(case):
     dys = torch.randint(0, ch, (n,), generator=gen)
     dxs = torch.randint(0, cw, (n,), generator=gen)
     total = torch.zeros((h, w), dtype=torch.float64)
+    mask_sum = torch.zeros((h, w), dtype=torch.float64)
+    probs = []
     with torch.no_grad():
         for i in range(n):
             big = F.interpolate(cells[i][None, None], size=((s + 1) * ch, (s + 1) * cw), mode="bilinear",
                                 align_corners=False)[0, 0]
             mask = big[int(dys[i]):int(dys[i]) + h, int(dxs[i]):int(dxs[i]) + w]
             prob = float(torch.softmax(model(x * mask).double(), dim=1)[0, target])
+            probs.append(prob)
             total += prob * mask.double()
+            mask_sum += mask.double()
     amap = compute_attribution("rise", model, x, target=target,
-                               params={"masks": n, "grid": s, "keep": p, "seed": seed, "batch_size": 10})
-    assert_close(amap.map, (total / (p * n)).numpy(), "RISE")
+                               params={"masks": n, "grid": s, "keep": p, "seed": seed, "batch_size": 10,
+                                       "agreement": 1.0})
+    # The paper's sum minus the control variate f̄·(Σ Mᵢ/(p·N) − 1), f̄ the mean score (rise.py's
+    # docstring; a control variate has expectation zero because every mask pixel has mean p).
+    # Common practice in Monte Carlo estimation, no source.
+    f_mean = sum(probs) / n
+    centred = total / (p * n) - f_mean * (mask_sum / (p * n) - 1.0)
+    assert_close(amap.map, centred.numpy(), "RISE")
+    # Expectation check: the control variate's own mean over the pixels is near zero (masks keep
+    # about p of the pixels), so the two estimators agree on average (Eq. 6 of the paper).
+    assert abs(float((mask_sum / (p * n)).mean()) - 1.0) < 0.25
 
 
 # ---------------------------------------------------------------------------------------------

@@ -245,9 +245,14 @@ def _top_overlap(a: np.ndarray, b: np.ndarray, share: float = 0.1) -> float:
     return len(top_a & top_b) / k
 
 
-@pytest.mark.parametrize("settings", [{}, {"refine_tolerance": 0.6, "drill_down": 0.05}], ids=["defaults", "coarser"])
+# The rank floors (our own): at the defaults the ranking and the top tenth must survive well; the
+# coarser setting trades them for speed on purpose, so it only has to keep most of them. What it
+# claims about itself (exact where evaluated, the size of its sampled error) is held to the same
+# standard in both.
+@pytest.mark.parametrize("settings, floor", [({}, 0.75), ({"refine_tolerance": 0.6, "drill_down": 0.05}, 0.6)],
+                         ids=["defaults", "coarser"])
 @pytest.mark.parametrize("sample", ["sound_tagged_01.png", "chip_plain_01.png"])
-def test_approximate_is_bounded_against_the_loop(tilenet, sample, settings):
+def test_approximate_is_bounded_against_the_loop(tilenet, sample, settings, floor):
     tile = REPO / "demo_models" / "tilenet" / "samples" / sample
     if not tile.is_file():
         pytest.skip("the demo samples are not built")
@@ -281,5 +286,5 @@ def test_approximate_is_bounded_against_the_loop(tilenet, sample, settings):
     assert float(error.max()) <= 0.1 * spread
     assert float(np.abs(res.drop - drop).max()) <= 0.1 * float(np.ptp(drop))
     rho = stats.spearmanr(res.grid.ravel(), grid.ravel()).statistic
-    assert rho >= 0.75, rho
-    assert _top_overlap(res.grid, grid) >= 0.75
+    assert rho >= floor, rho
+    assert _top_overlap(res.grid, grid) >= floor

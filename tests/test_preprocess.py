@@ -105,6 +105,21 @@ def test_truncated_png_and_jpeg():
             read_image(data[: len(data) // 2])
 
 
+def test_truncated_files_stay_refused_after_the_pdf_engine_loads():
+    # WeasyPrint sets Pillow's process-wide LOAD_TRUNCATED_IMAGES on import; the report's PDF
+    # must not make later uploads half-decode (this failed when the tests ran in file order).
+    from pellucid.core.audit import report_pdf
+    from pellucid.core.errors import ReportError
+
+    try:
+        report_pdf._engine()
+    except ReportError:
+        pytest.skip("the PDF engine is not installed here")
+    data = png_bytes(Image.fromarray(np.zeros((32, 32, 3), dtype=np.uint8) + 90), "PNG")
+    with pytest.raises(ImageDecodeError, match="truncated or damaged"):
+        read_image(data[: len(data) // 2])
+
+
 def test_decompression_bomb_is_refused_before_decoding():
     data = png_bytes(Image.new("L", (4000, 4000)))
     with pytest.raises(ImageTooLargeError, match="over the limit"):

@@ -55,9 +55,12 @@ def check_geometry(input_shape: tuple[int, int, int], params: dict[str, Any]) ->
     """Patch and stride must fit a (C, H, W) input, and the stride must not skip pixels."""
     _, h, w = input_shape
     params = dict(params)
+    # The given values first, so a sentence names what the user typed (a stride alone also raises
+    # the default patch to it, which would otherwise be blamed).
+    stated = [name for name in ("stride", "patch") if params.get(name) is not None]
     params["patch"], params["stride"] = default_occlusion_geometry(h, w, patch=params.get("patch"),
                                                                    stride=params.get("stride"))
-    for name in ("patch", "stride"):
+    for name in (*stated, "patch", "stride"):
         value = params.get(name)
         if isinstance(value, int) and value > min(h, w):
             raise BadParameterError(

@@ -284,13 +284,13 @@ def suspicion(placement: Placement) -> tuple[float, list[str]]:
     elif p.fixed and p.region in OFF_CENTRE_REGIONS:
         apart = max(0.0, 1.0 - 1.0 / max(p.region_concentration, 1e-12))
         reasons.append(f"it gathers in {REGION_WORDS[p.region]} ({100 * p.region_share:.0f}% of the evidence, "
-                       f"{p.region_concentration:.1f}× that region's share of the area); no objects are annotated")
+                       f"{p.region_concentration:.1f}× that region's share of the area); no boxes or masks were given")
     elif p.fixed:
         apart = 0.0
-        reasons.append("it gathers in the centre, where the subject usually is; no objects are annotated")
+        reasons.append("it gathers in the centre, where the subject usually is; no boxes or masks were given")
     else:
         apart = 0.5
-        reasons.append("no objects are annotated, so its place cannot be told apart from the subject")
+        reasons.append("no boxes or masks were given, so its place cannot be told apart from the subject")
     return float(apart * (1.0 + compact) / 2.0), reasons
 
 

@@ -197,7 +197,8 @@ def discovery_lines(summary: dict) -> list[str]:
         top = ranked[0]
         line += f"; most suspicious: {top['key']} ({top['size']} image(s), suspicion {top['suspicion']:.2f})"
     else:
-        line += "; none sits in a small spot or off the object"
+        annotated = any(c.get("placement", {}).get("with_object") for c in clusters.values())
+        line += "; none sits in a small spot" + (" or off the annotated object" if annotated else " set apart")
     lines = [line]
     conf = summary.get("confirmation")
     if conf:

@@ -31,6 +31,9 @@ SYSTEM_PACKAGES = "libpango-1.0-0 libpangoft2-1.0-0 libharfbuzz0b libharfbuzz-su
 
 def _engine():
     """The weasyprint module, or a ReportError saying what to install."""
+    from PIL import ImageFile
+
+    decodes_truncated = ImageFile.LOAD_TRUNCATED_IMAGES
     try:
         import weasyprint
     except ImportError:
@@ -40,6 +43,10 @@ def _engine():
         raise ReportError(f"the PDF engine cannot load its system libraries ({exc}); on Debian or Ubuntu: "
                           f"apt-get install {SYSTEM_PACKAGES} (the HTML report was written; --no-pdf writes it "
                           "alone)") from None
+    finally:
+        # Importing the engine switches Pillow, process-wide, to decoding truncated files; the
+        # intake must keep refusing them (a damaged upload is named, not half-read).
+        ImageFile.LOAD_TRUNCATED_IMAGES = decodes_truncated
     # The engine logs every CSS property it does not know; those are for screens, not for the reader.
     logging.getLogger("weasyprint").setLevel(logging.ERROR)
     return weasyprint

@@ -18,6 +18,9 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="a model spec file or a bundled model name; repeat for several (default: tilenet)")
     p.add_argument("--images", type=Path, default=None, metavar="DIR",
                    help="a folder of images to browse and audit from the pages (nothing outside it is read)")
+    p.add_argument("--models", type=Path, default=None, metavar="DIR", dest="models_dir",
+                   help="a folder of model spec files (.toml) that the pages may add models from while the "
+                        "server runs (chosen by name from a list; nothing outside the folder is read)")
     p.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, default=8000, help="port (default 8000)")
     p.add_argument("--store", type=Path, default=None, metavar="DIR",
@@ -64,11 +67,14 @@ def _serve(args: argparse.Namespace) -> int:
     models = tuple(str(resolve_model_ref(m)) for m in (args.model or ["tilenet"]))
     if args.images is not None and not args.images.is_dir():
         raise DataError(f"--images {str(args.images)!r} is not a folder")
+    if args.models_dir is not None and not args.models_dir.is_dir():
+        raise DataError(f"--models {str(args.models_dir)!r} is not a folder")
     settings = Settings(
         host=args.host,
         port=args.port,
         models=models,
         image_root=args.images.resolve() if args.images else None,
+        models_dir=args.models_dir.resolve() if args.models_dir else None,
         data_dir=args.store or default_data_dir(),
         trust_pickled=args.trust_pickled,
         token=args.token,

@@ -59,6 +59,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     app.include_router(status.router)
     app.include_router(models.router)
+    app.include_router(models.specs_router)
     app.include_router(images.router)
     app.include_router(inspect.router)
     app.include_router(jobs.router)

@@ -19,6 +19,8 @@ class Settings:
     models: tuple[str, ...] = ("tilenet",)
     include_bundled: bool = True
     image_root: Path | None = None
+    # A folder of model spec files (``--models``) the pages may add models from, by file name only.
+    models_dir: Path | None = None
     # The store's folder (``--store``): audit runs, their artefacts, generated demo folders.
     data_dir: Path = field(default_factory=lambda: Path(".pellucid"))
     max_upload_bytes: int = MAX_IMAGE_BYTES

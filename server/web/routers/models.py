@@ -1,9 +1,14 @@
-"""Models on offer: list, load (summary, spec, fingerprint, card), layer map, kernels."""
+"""Models on offer: list, load (summary, spec, fingerprint, card), layer map, kernels; and the spec
+files of the ``--models`` folder, from which a page may add a model while the server runs (by file
+name only: a request never names a path outside that folder)."""
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Depends, Query
+from fastapi import APIRouter, Depends, Query, Response
+from pydantic import BaseModel, Field
 
+from pellucid.core.errors import NotFoundError, PellucidError
+from pellucid.core.model.spec_folder import list_spec_files, open_spec_file
 from pellucid.core.views import render
 from pellucid.core.views.kernels import channel_grid, kernel_view, rgb_grid
 from pellucid.web.deps import get_workspace
@@ -12,6 +17,7 @@ from pellucid.web.schemas import KernelsResponse, LayerMapResponse, LayerRow, Mo
 from pellucid.web.workspace import Workspace
 
 router = APIRouter(prefix="/api/models", tags=["models"])
+specs_router = APIRouter(prefix="/api/model-specs", tags=["models"])
 
 
 @router.get("", response_model=ModelList, summary="The models this server can serve")
@@ -126,3 +132,63 @@ def get_kernels(
         near_duplicates=d["near_duplicates"], duplicates_total=d["duplicates_total"],
         duplicate_rule=d["duplicate_rule"], conv_layers=conv_layer_names(lm.module), explanation=explanation,
     )
+
+
+class SpecFileEntry(BaseModel):
+    file: str = Field(description="its name in the models folder")
+    name: str | None = Field(description="the model it describes (None when it cannot be read)")
+    description: str
+    error: str | None = Field(description="why it cannot be used, in one sentence")
+    served: bool = Field(description="a model of this name is already on offer")
+
+
+class SpecFileList(BaseModel):
+    available: bool = Field(description="the server was started with --models DIR")
+    folder: str | None = Field(description="the folder's own name (not its full path)")
+    specs: list[SpecFileEntry]
+
+
+class AddSpec(BaseModel):
+    file: str = Field(description="a spec file's name as GET /api/model-specs lists it, e.g. 'resnet/spec.toml'")
+
+
+class AddedModel(BaseModel):
+    name: str
+    description: str
+    file: str
+    added: bool = Field(description="False when this spec file was already served")
+
+
+def _models_dir(ws: Workspace):
+    folder = ws.settings.models_dir
+    if folder is None:
+        raise NotFoundError("this server has no models folder; start it with --models DIR to add models from "
+                            "the pages")
+    return folder
+
+
+@specs_router.get("", response_model=SpecFileList, summary="The spec files a model can be added from (--models DIR)")
+def list_spec_folder(ws: Workspace = Depends(get_workspace)) -> SpecFileList:
+    folder = ws.settings.models_dir
+    if folder is None:
+        return SpecFileList(available=False, folder=None, specs=[])
+    entries = [SpecFileEntry(**f.to_dict(), served=f.name in ws.specs) for f in list_spec_files(folder)]
+    return SpecFileList(available=True, folder=folder.name, specs=entries)
+
+
+@specs_router.post("", response_model=AddedModel, status_code=201,
+                   summary="Serve one more model from a spec file of the models folder (loaded and checked "
+                           "first; 200 when it is already served)")
+def add_from_spec_folder(body: AddSpec, response: Response, ws: Workspace = Depends(get_workspace)) -> AddedModel:
+    spec = open_spec_file(_models_dir(ws), body.file)
+    already = spec.name in ws.specs
+    added = ws.add_spec(spec.path)  # 409 when the name is taken by another spec file
+    if already:
+        response.status_code = 200
+    if not already:
+        try:
+            ws.model(added.name)  # a spec that parses but does not load is refused now, not on first use
+        except PellucidError:
+            ws.specs.pop(added.name, None)
+            raise
+    return AddedModel(name=added.name, description=added.description, file=body.file, added=not already)

@@ -1,4 +1,6 @@
 // Image evidence page: intake, top-k, feature maps, attribution maps as jobs.
+// The page's state (model, image, method, parameters, open map) lives in the URL, and images and maps
+// live in the server's store, so a reload or a link sent to someone opens the same view.
 "use strict";
 
 (() => {
@@ -8,14 +10,16 @@
     model: $("#model-select").value,
     summary: null,
     image: null,        // ImageInfo
+    view: 0,            // bumped whenever the image or model changes: answers for an older view are dropped
     methods: [],
     activations: null,  // last ActivationsResponse
     channelValues: null,
     resultValues: null,
     result: null,
-    job: null,
-    results: [],        // ResultResponse list for the strip
+    job: null,          // {id, image, imageName, model} of the running job
+    maps: [],           // MapSummary list of this image and model (from the store)
   };
+  const COST_CONFIRM_SECONDS = 30;  // above this an estimate asks before the work starts
 
   const intakeError = $("#intake-error");
 
@@ -41,6 +45,50 @@
         onclick: () => openImage(() => api("/api/samples/open", { json: { model: state.model, name: s.name } })),
       }, [el("img", { src: s.thumbnail, alt: "demo sample " + s.name, class: "pixelated" }), el("span", { text: s.name })]));
     }
+  }
+
+  // ---- recent images (kept in the store) --------------------------------------------------
+
+  async function loadRecent() {
+    const list = clear($("#recent"));
+    let images;
+    try {
+      images = await api("/api/images?limit=24");
+    } catch (err) {
+      showError(intakeError, err.message);
+      return;
+    }
+    $("#recent-empty").hidden = images.length > 0;
+    for (const img of images) {
+      const current = state.image && state.image.id === img.id;
+      list.append(el("li", { dataset: { id: img.id } }, [
+        el("button", {
+          type: "button", class: "sample", title: `${img.name} · sha256 ${img.id.slice(0, 12)}…`,
+          "aria-current": current ? "true" : null,
+          onclick: () => openImage(() => api("/api/images/" + img.id)),
+        }, [el("img", { src: img.thumbnail, alt: "", class: "pixelated" }), el("span", { text: img.name })]),
+        el("button", { type: "button", class: "link forget", text: "forget",
+                       "aria-label": `forget ${img.name} and its maps`, onclick: () => forgetImage(img) }),
+      ]));
+    }
+  }
+
+  async function forgetImage(img) {
+    if (!window.confirm(`Forget ${img.name} and every map made from it? This removes them from the store.`)) return;
+    try {
+      await api("/api/images/" + img.id, { method: "DELETE" });
+    } catch (err) {
+      showError(intakeError, err.message);
+      return;
+    }
+    if (state.image && state.image.id === img.id) {
+      state.image = null;
+      state.view += 1;
+      forgetResult();
+      for (const id of ["#seen", "#features", "#evidence"]) $(id).hidden = true;
+      saveUrl(true);
+    }
+    await loadRecent();
   }
 
   // ---- image folder ------------------------------------------------------------------------
@@ -78,23 +126,32 @@
     return api("/api/images", { method: "POST", body: form });
   }
 
-  async function openImage(getInfo) {
+  async function openImage(getInfo, { push = true } = {}) {
     showError(intakeError, "");
+    let info;
     try {
-      state.image = await getInfo();
+      info = await getInfo();
     } catch (err) {
       showError(intakeError, err.message);
-      return;
+      return false;
     }
-    P.remember("image", state.image.id);
-    state.results = [];
+    state.image = info;
+    state.view += 1;
+    if (!state.job) clearJobLines();
+    P.remember("image", info.id);
+    forgetResult();
+    noteDetachedJob();
+    state.maps = [];
     renderStrip();
-    $("#result-view").hidden = true;
+    saveUrl(push);
     await showImage();
+    await Promise.all([loadMaps(), loadRecent()]);
+    return true;
   }
 
   async function showImage() {
     const img = state.image;
+    const view = state.view;
     $("#image-name").textContent = img.name;
     $("#image-id").textContent = "sha256 " + img.id.slice(0, 16) + "…";
     try {
@@ -102,6 +159,7 @@
         api(`/api/images/${img.id}/prepared?model=${encodeURIComponent(state.model)}`),
         api("/api/predict", { json: { model: state.model, image: img.id, k: 5 } }),
       ]);
+      if (view !== state.view) return;
       $("#prepared").src = prepared.png;
       $("#prepared").style.width = Math.max(192, Math.min(320, prepared.size[1] * 2)) + "px";
       $("#image-size").textContent = `stored ${img.original_size[0]}×${img.original_size[1]} ${img.original_mode}` +
@@ -204,11 +262,86 @@
     }
   }
 
+  // ---- the URL holds the page's state ------------------------------------------------------
+
+  // Only parameters that differ from their defaults go in the URL, so links stay short.
+  function changedParams() {
+    const m = currentMethod();
+    if (!m) return {};
+    const read = P.readParams($("#method-params"), m);
+    const out = {};
+    for (const p of m.params) {
+      if (read[p.name] !== undefined && String(read[p.name]) !== String(p.default)) out[p.name] = read[p.name];
+    }
+    return out;
+  }
+
+  function urlQuery() {
+    const q = new URLSearchParams();
+    q.set("model", state.model);
+    if (state.image) q.set("image", state.image.id);
+    const m = currentMethod();
+    if (m) q.set("method", m.name);
+    const target = $("#target-select").value;
+    if (target !== "") q.set("target", target);
+    for (const [k, v] of Object.entries(changedParams())) q.set("p." + k, v);
+    if (state.result && state.image && state.result.image === state.image.id) q.set("map", state.result.id);
+    return "?" + q.toString();
+  }
+
+  function saveUrl(push = false) {
+    const query = urlQuery();
+    if (query === location.search) return;
+    if (push) history.pushState(null, "", query);
+    else history.replaceState(null, "", query);
+  }
+
+  // Bring the page to what the URL says (first load, reload, back and forward, a link from someone).
+  async function restoreFromUrl() {
+    const q = new URLSearchParams(location.search);
+    const model = q.get("model");
+    if (model && model !== state.model) {
+      if (![...$("#model-select").options].some((o) => o.value === model)) {
+        showError(intakeError, `This link names the model ${model}, which this server does not serve; showing ${state.model}.`);
+      } else {
+        $("#model-select").value = model;
+        state.model = model;
+        state.view += 1;
+        await loadModel();
+      }
+    }
+    const method = q.get("method");
+    if (method && state.methods.some((m) => m.name === method)) $("#method-select").value = method;
+    const overrides = {};
+    for (const [k, v] of q) if (k.startsWith("p.")) overrides[k.slice(2)] = v;
+    showMethod(overrides);
+    if (q.has("target")) $("#target-select").value = q.get("target");
+    const imageId = q.get("image");
+    if (imageId && (!state.image || state.image.id !== imageId)) {
+      const opened = await openImage(() => api("/api/images/" + encodeURIComponent(imageId)), { push: false });
+      if (!opened) return;
+    } else if (!imageId && state.image) {
+      state.image = null;
+      state.view += 1;
+      forgetResult();
+      for (const id of ["#seen", "#features", "#evidence"]) $(id).hidden = true;
+    }
+    const map = q.get("map");
+    if (map && state.image) await showResult(map, { syncForm: !method });
+    else if (!map) forgetResult();
+  }
+
   // ---- attribution maps --------------------------------------------------------------------
+
+  // A 'custom' baseline needs a reference picture that neither this page nor the JSON API can send,
+  // so the page does not offer it (the Python API takes one: baseline_input=).
+  function offeredMethod(m) {
+    return { ...m, params: m.params.map((p) => (p.choices ? { ...p, choices: p.choices.filter((c) => c !== "custom") } : p)) };
+  }
 
   async function loadMethods() {
     const list = await api("/api/methods");
-    state.methods = list.methods;
+    state.methods = list.methods.map(offeredMethod);
     const select = $("#method-select");
     fillSelect(select, state.methods.map((m) => [m.name, m.title]), "occlusion");
     showMethod();
@@ -218,54 +351,148 @@
     return state.methods.find((m) => m.name === $("#method-select").value);
   }
 
-  function showMethod() {
+  function showMethod(overrides = {}) {
     const m = currentMethod();
     if (!m) return;
-    P.paramInputs($("#method-params"), m);
+    P.paramInputs($("#method-params"), m, overrides);
     $("#method-help").textContent = `${m.description} Source: ${m.reference}.`;
+    scheduleEstimate();
   }
+
+  // ---- cost before work --------------------------------------------------------------------
+
+  let estimateTimer = null;
+  function scheduleEstimate() {
+    clearTimeout(estimateTimer);
+    estimateTimer = setTimeout(showEstimate, 250);
+  }
+
+  function costText(est, what) {
+    if (est.seconds === null || est.seconds === undefined) return `${what}: ${fmtInt(est.forwards)} forward-pass equivalents.`;
+    const perForward = est.forwards ? est.seconds / est.forwards : null;
+    const bound = est.method === "occlusion" ? "at most " : "about ";
+    return `${what}: ${bound}${fmtSeconds(est.seconds)} on this server — ${fmtInt(Math.round(est.forwards))} ` +
+      `forward-pass equivalents (a backward pass counts as two)` +
+      (perForward ? ` × ${fmtSeconds(perForward)} measured per forward pass` : "") + ".";
+  }
+
+  async function fetchEstimate() {
+    const m = currentMethod();
+    if (!m) return null;
+    return api("/api/estimate", { json: { model: state.model, method: m.name, params: P.readParams($("#method-params"), m) } });
+  }
+
+  async function showEstimate() {
+    const line = $("#method-cost");
+    try {
+      const est = await fetchEstimate();
+      if (!est) return;
+      line.textContent = est.allowed ? costText(est, "Cost of this map") : "This server would refuse this map: " + est.refusal;
+      line.dataset.seconds = est.seconds === null ? "" : String(est.seconds);
+    } catch (err) {
+      line.textContent = err.message;
+    }
+  }
+
+  // An in-page question (not a browser dialog) so it can be read and answered by keyboard.
+  function confirmCost(text) {
+    const box = $("#cost-confirm");
+    $("#cost-confirm-text").textContent = text;
+    box.hidden = false;
+    $("#cost-go").focus();
+    return new Promise((resolve) => {
+      const answer = (yes) => () => { box.hidden = true; $("#cost-go").onclick = $("#cost-stop").onclick = null; resolve(yes); };
+      $("#cost-go").onclick = answer(true);
+      $("#cost-stop").onclick = answer(false);
+    });
+  }
+
+  async function costAllows(est, what) {
+    if (est.seconds === null || est.seconds === undefined || est.seconds <= COST_CONFIRM_SECONDS) return true;
+    return confirmCost(costText(est, what) + ` That is more than ${COST_CONFIRM_SECONDS} s. Start it?`);
+  }
+
+  // ---- jobs --------------------------------------------------------------------------------
 
   function setRunning(running) {
     for (const id of ["#run-button", "#faith-button", "#sanity-button"]) $(id).disabled = running;
     $("#cancel-button").disabled = !running;
   }
 
+  function clearJobLines() {
+    showError($("#job-error"), "");
+    $("#job-text").textContent = "";
+    $("#job-bar").value = 0;
+    $("#job-box").hidden = true;
+    $("#cost-confirm").hidden = true;
+  }
+
+  function jobIsForView(job) {
+    return job && state.image && job.image === state.image.id && job.model === state.model;
+  }
+
+  // The running job belongs to another image or model than the one shown now: say so beside its progress.
+  function noteDetachedJob() {
+    if (state.job && !jobIsForView(state.job)) {
+      $("#job-box").dataset.detached = "true";
+    }
+  }
+
   async function runMethod(event) {
     event.preventDefault();
-    if (!state.image) return;
+    if (!state.image || state.job) return;
     const m = currentMethod();
-    showError($("#job-error"), "");
+    clearJobLines();
+    const params = P.readParams($("#method-params"), m);
     const target = $("#target-select").value;
+    const job = { image: state.image.id, imageName: state.image.name, model: state.model };
     let status;
     try {
+      const est = await fetchEstimate();
+      if (!est.allowed) { showError($("#job-error"), est.refusal); return; }
+      if (!(await costAllows(est, `${m.title} on ${job.imageName}`))) return;
       status = await api("/api/jobs", {
-        json: { model: state.model, image: state.image.id, method: m.name, target: target === "" ? null : Number(target),
-                params: P.readParams($("#method-params"), m) },
+        json: { model: job.model, image: job.image, method: m.name, target: target === "" ? null : Number(target), params },
       });
     } catch (err) {
       showError($("#job-error"), err.message);
       return;
     }
-    status = await track(status, m.name === "occlusion" ? "positions" : "steps");
-    if (status && status.state === "done") {
-      await showResult(status.result_id, true);
+    status = await track(status, job);
+    if (status && status.state === "done") await finished(job, status);
+  }
+
+  // A finished job's map is shown only if the page still shows its image and model; else it is
+  // kept in the store under its own image, and a line says where it went.
+  async function finished(job, status) {
+    if (jobIsForView(job)) {
+      await showResult(status.result_id);
+      await loadMaps();
+    } else {
+      $("#job-text").textContent = `The map for ${job.imageName} (${job.model}) is finished and kept with that image; ` +
+        "it is not shown here because this page now shows another image or model.";
+      const link = $("#job-text").appendChild(el("a", { href: status.link || "#", text: " Open it." }));
+      link.id = "job-elsewhere";
     }
   }
 
   // Follow a job in the progress box; returns its final status (or null when polling failed).
-  async function track(status, unit) {
-    state.job = status.id;
+  async function track(status, job) {
+    state.job = { ...job, id: status.id };
     setRunning(true);
     const bar = $("#job-bar");
-    $("#job-box").hidden = false;
-    $("#job-box").dataset.state = status.state;
+    const box = $("#job-box");
+    box.hidden = false;
+    box.dataset.state = status.state;
+    box.dataset.detached = "false";
     const cached = status.cached;
     try {
       status = await P.followJob(status.id, (s) => {
         s.cached = cached;
         bar.value = s.fraction;
-        $("#job-text").textContent = P.progressText(s, unit);
-        $("#job-box").dataset.state = s.state;
+        const elsewhere = !jobIsForView(state.job) ? ` — for ${job.imageName} (${job.model}), not the image shown` : "";
+        $("#job-text").textContent = P.progressText(s) + elsewhere;
+        box.dataset.state = s.state;
       });
     } catch (err) {
       showError($("#job-error"), err.message);
@@ -281,25 +508,64 @@
   async function cancelJob() {
     if (!state.job) return;
     try {
-      await api(`/api/jobs/${state.job}/cancel`, { method: "POST" });
+      await api(`/api/jobs/${state.job.id}/cancel`, { method: "POST" });
     } catch (err) {
       showError($("#job-error"), err.message);
     }
   }
 
-  async function showResult(resultId, addToStrip) {
-    const r = await api("/api/results/" + resultId);
+  // ---- one map -----------------------------------------------------------------------------
+
+  function forgetResult() {
+    state.result = null;
+    state.resultValues = null;
+    $("#result-view").hidden = true;
+    clear($("#faith-out"));
+    clear($("#sanity-out"));
+  }
+
+  // The method form shows what produced the map on screen (so the strip and the form never disagree).
+  function syncFormTo(r) {
+    if (!state.methods.some((m) => m.name === r.method)) return;
+    $("#method-select").value = r.method;
+    const m = currentMethod();
+    const overrides = {};
+    for (const p of m.params) if (r.params[p.name] !== undefined && r.params[p.name] !== null) overrides[p.name] = r.params[p.name];
+    showMethod(overrides);
+    $("#target-select").value = r.target_source === "given" ? String(r.target) : "";
+  }
+
+  async function showResult(resultId, { syncForm = true } = {}) {
+    const view = state.view;
+    let r;
+    try {
+      r = await api("/api/results/" + encodeURIComponent(resultId));
+    } catch (err) {
+      showError($("#job-error"), err.message);
+      return;
+    }
+    if (view !== state.view) return;  // the user moved on meanwhile
+    if (!state.image || r.image !== state.image.id || r.model !== state.model) {
+      showError($("#job-error"), `Map ${r.id} was made for ${r.image_name} with ${r.model}, not for what this page shows.`);
+      return;
+    }
     state.result = r;
     state.resultValues = r.values;
+    if (syncForm) syncFormTo(r);
     $("#result-base").src = r.image_png;
     $("#result-map").src = r.map_png;
     $("#result-map").style.opacity = $("#result-opacity").value;
     $("#result-colorbar").src = r.colorbar;
+    $("#result-colorbar").alt = `Colour bar: ${r.unit}, from ${fmt(r.vmin)} to ${fmt(r.vmax)}`;
     $("#result-png").href = `/api/results/${r.id}/overlay.png?opacity=${$("#result-opacity").value}`;
     $("#result-title").textContent = `${r.title} for “${r.target_label}”`;
+    const link = new URL(r.link, location.href).href;
+    $("#result-link").href = r.link;
+    $("#result-link").textContent = link;
     const facts = clear($("#result-facts"));
     const rows = [
       ["Value shown", r.value_label],
+      ["Unit of the colour bar", r.unit],
       ["Target class", `${r.target} · ${r.target_label} (${r.target_source === "given" ? "chosen" : "the model's top-1"})`],
       ["Colour scale", `${r.cmap}, ${fmt(r.vmin)} to ${fmt(r.vmax)}` + (r.signed ? " (diverging, centred at zero)" : "")],
       ["Parameters", Object.entries(r.params).map(([k, v]) => `${k}=${v}`).join(", ") || "none"],
@@ -307,7 +573,7 @@
       ["Model fingerprint", r.fingerprint.slice(0, 16) + "…"],
       ["Image sha256", r.image.slice(0, 16) + "…"],
     ];
-    if (r.engine) rows.splice(3, 0, ["Engine that ran", r.engine + (r.approximate ? " (approximate)" : " (exact)")]);
+    if (r.engine) rows.splice(4, 0, ["Engine that ran", r.engine + (r.approximate ? " (approximate)" : " (exact)")]);
     for (const [k, v] of Object.entries(r.extras)) {
       if (k === "engine" || k === "warning" || typeof v === "object") continue;
       rows.push([k.replace(/_/g, " "), Number.isInteger(v) ? fmtInt(v) : typeof v === "number" ? fmt(v, 4) : String(v)]);
@@ -321,11 +587,10 @@
     warning.textContent = r.warning || "";
     warning.hidden = !r.warning;
     $("#result-view").hidden = false;
+    $("#result-readout").textContent = "Point at the map, or focus it and use the arrow keys, to read its value there.";
     renderChecks(r);
-    const known = state.results.findIndex((x) => x.id === r.id);
-    if (known >= 0) state.results[known] = r;
-    else if (addToStrip) state.results.push(r);
     renderStrip();
+    saveUrl();
     await renderRanking();
   }
 
@@ -353,15 +618,20 @@
       const sc = r.sanity;
       sanity.append(el("p", { id: "sanity-verdict" }, [
         el("span", { class: sc.verdict === "pass" ? "verdict-pass" : "verdict-fail",
-                     text: sc.verdict === "pass" ? "Passes the check" : "Fails the check" }),
+                     text: sc.verdict === "pass" ? "Passes the check" : sc.verdict === "fail" ? "Fails the check" : "Inconclusive" }),
         ": " + sc.reason,
       ]));
       const steps = sc.steps;
       const xs = steps.map((_, i) => i + 1);
       const series = [{ label: "Spearman", xs, ys: steps.map((s) => s.spearman) }];
       if (steps.every((s) => s.ssim !== null)) series.push({ label: "SSIM", xs, ys: steps.map((s) => s.ssim), cls: "second" });
-      const chart = P.lineChart(series, { xLabel: "layers randomised, from the top", yLabel: "similarity to the trained map",
-                                          xMax: Math.max(1, steps.length), yMin: -1, yMax: 1 });
+      // Whole steps only: at most about eight labels, each a step number.
+      const every = Math.max(1, Math.ceil(steps.length / 8));
+      const xTicks = [0, ...xs.filter((x) => x % every === 0 || x === steps.length)];
+      const chart = P.lineChart(series, { xLabel: "randomisation steps (blocks of layers, from the top)",
+                                          yLabel: "similarity to the trained map", xMax: Math.max(1, steps.length),
+                                          yMin: -1, yMax: 1, xTicks });
+      chart.id = "sanity-chart";
       chart.setAttribute("aria-label", "Similarity of the map to the trained model's map after each randomisation step");
       sanity.append(chart, el("p", { class: "note" }, [
         el("span", { class: "key-first", text: "Spearman rank correlation of |map|" }), " · ",
@@ -372,7 +642,7 @@
 
   async function renderRanking() {
     const current = state.result;
-    const scored = state.results.filter((x) => x.faithfulness && current && x.target === current.target);
+    const scored = state.maps.filter((x) => x.checks.includes("faithfulness") && current && x.target === current.target);
     const box = $("#ranking-box");
     box.hidden = scored.length < 2;
     if (scored.length < 2) return;
@@ -387,31 +657,67 @@
   }
 
   async function check(kind) {
-    if (!state.result) return;
-    showError($("#job-error"), "");
+    if (!state.result || state.job) return;
+    const r = state.result;
+    clearJobLines();
+    const job = { image: r.image, imageName: r.image_name, model: r.model };
+    const what = kind === "sanity" ? "The weight-randomisation check" : "The faithfulness score";
     let status;
     try {
-      status = await api(`/api/results/${state.result.id}/${kind}`, { method: "POST" });
+      const est = await api(`/api/results/${r.id}/estimate?check=${kind}`);
+      if (!est.done) {
+        $("#method-cost").textContent = `${what}: ${fmtInt(est.count)} ${est.units}, ` +
+          (est.seconds === null ? `${fmtInt(Math.round(est.forwards))} forward-pass equivalents.` : `about ${fmtSeconds(est.seconds)} on this server.`);
+        if (est.seconds !== null && est.seconds > COST_CONFIRM_SECONDS &&
+            !(await confirmCost(`${what} of this map: ${fmtInt(est.count)} ${est.units}, about ${fmtSeconds(est.seconds)} ` +
+                                `on this server (${fmtInt(Math.round(est.forwards))} forward-pass equivalents). ` +
+                                `That is more than ${COST_CONFIRM_SECONDS} s. Start it?`))) return;
+      }
+      status = await api(`/api/results/${r.id}/${kind}`, { method: "POST" });
     } catch (err) {
       showError($("#job-error"), err.message);
       return;
     }
-    status = await track(status, kind === "sanity" ? "randomisation steps" : "steps");
-    if (status && status.state === "done") await showResult(status.result_id, false);
+    status = await track(status, job);
+    if (status && status.state === "done" && jobIsForView(job) && state.result && state.result.id === r.id) {
+      await showResult(r.id, { syncForm: false });
+      await loadMaps();
+    }
+  }
+
+  // ---- the maps of this image (from the store) ---------------------------------------------
+
+  async function loadMaps() {
+    if (!state.image) return;
+    const view = state.view;
+    let list;
+    try {
+      list = await api(`/api/images/${state.image.id}/maps?model=${encodeURIComponent(state.model)}`);
+    } catch (err) {
+      showError($("#job-error"), err.message);
+      return;
+    }
+    if (view !== state.view) return;
+    state.maps = list.maps;
+    renderStrip();
+    await renderRanking();
   }
 
   function renderStrip() {
     const strip = clear($("#result-strip"));
-    $("#strip-empty").hidden = state.results.length > 0;
-    for (const r of state.results) {
-      strip.append(el("button", { type: "button", class: "strip-item", onclick: () => showResult(r.id, false),
-                                  title: `${r.title}, ${r.target_label}` }, [
-        el("span", { class: "stack small" }, [
-          el("img", { src: r.image_png, alt: "", class: "pixelated" }),
-          el("img", { src: r.map_png, alt: `${r.title} map for ${r.target_label}`, class: "pixelated over", style: "opacity:0.6" }),
+    $("#strip-empty").hidden = state.maps.length > 0;
+    for (const m of state.maps) {
+      const current = state.result && state.result.id === m.id;
+      strip.append(el("div", { class: "strip-cell" }, [
+        el("button", { type: "button", class: "strip-item", onclick: () => showResult(m.id),
+                       "aria-current": current ? "true" : "false", dataset: { id: m.id },
+                       title: `${m.title}, ${m.target_label}` }, [
+          el("img", { src: m.thumbnail, alt: `${m.title} map for ${m.target_label}`, class: "thumb" }),
+          el("span", { text: m.title }),
+          el("span", { class: "note", text: m.target_label + (m.engine ? " · " + m.engine : "") +
+                                            (m.checks.length ? " · " + m.checks.join(", ") : "") }),
         ]),
-        el("span", { text: r.title }),
-        el("span", { class: "note", text: r.target_label + (r.engine ? " · " + r.engine : "") }),
+        el("a", { href: m.link, class: "note", text: "link", "aria-label": `link to the ${m.title} map for ${m.target_label}` }),
       ]));
     }
   }
@@ -435,14 +741,19 @@
 
     $("#model-select").addEventListener("change", async () => {
       state.model = $("#model-select").value;
-      history.replaceState(null, "", "?model=" + encodeURIComponent(state.model));
+      state.view += 1;
+      if (!state.job) clearJobLines();
+      forgetResult();
+      noteDetachedJob();
+      state.maps = [];
+      renderStrip();
       await loadModel();
+      showMethod();
+      saveUrl(true);
       if (state.image) {
-        state.results = [];
-        renderStrip();
-        $("#result-view").hidden = true;
         $("#channel-view").hidden = true;
         await showImage();
+        await loadMaps();
       }
     });
     $("#layer-select").addEventListener("change", () => { $("#channel-view").hidden = true; loadActivations(); });
@@ -454,28 +765,41 @@
       $("#result-map").style.opacity = e.target.value;
       if (state.result) $("#result-png").href = `/api/results/${state.result.id}/overlay.png?opacity=${e.target.value}`;
     });
-    $("#method-select").addEventListener("change", showMethod);
+    $("#method-select").addEventListener("change", () => { showMethod(); saveUrl(); });
+    $("#method-params").addEventListener("change", () => { scheduleEstimate(); saveUrl(); });
+    $("#target-select").addEventListener("change", () => saveUrl());
     $("#method-form").addEventListener("submit", runMethod);
     $("#cancel-button").addEventListener("click", cancelJob);
     $("#faith-button").addEventListener("click", () => check("faithfulness"));
     $("#sanity-button").addEventListener("click", () => check("sanity"));
+    $("#copy-link").addEventListener("click", async () => {
+      try {
+        await navigator.clipboard.writeText($("#result-link").textContent);
+        $("#copy-link").textContent = "Copied";
+      } catch (_) {
+        $("#copy-link").textContent = "Select the link and copy it";
+      }
+      setTimeout(() => { $("#copy-link").textContent = "Copy link"; }, 2500);
+    });
+    window.addEventListener("popstate", () => restoreFromUrl().catch((err) => showError(intakeError, err.message)));
 
     P.hoverReadout($("#channel-stack"), () => state.channelValues, (row, col, v) => {
-      $("#channel-readout").textContent = v === null ? "Point at the map to read the activation there."
+      $("#channel-readout").textContent = v === null ? "Point at the map, or focus it and use the arrow keys, to read the activation there."
         : `row ${row}, column ${col}: activation ${fmt(v, 4)}`;
     });
     P.hoverReadout($("#result-stack"), () => state.resultValues, (row, col, v) => {
-      if (v === null) { $("#result-readout").textContent = "Point at the map to read its value there."; return; }
-      const what = state.result && state.result.method === "occlusion" ? "probability drop" : "attribution";
-      $("#result-readout").textContent = `pixel (${col}, ${row}): ${what} ${fmt(v, 4)}`;
+      if (v === null) { $("#result-readout").textContent = "Point at the map, or focus it and use the arrow keys, to read its value there."; return; }
+      const unit = state.result ? state.result.unit : "";
+      $("#result-readout").textContent = `pixel (${col}, ${row}): ${fmt(v, 4)} ${unit ? "· " + unit : ""}`;
     });
   }
 
   async function start() {
     wire();
     try {
-      await Promise.all([loadModel(), loadMethods()]);
+      await Promise.all([loadModel(), loadMethods(), loadRecent()]);
       await browse("");
+      await restoreFromUrl();
     } catch (err) {
       showError(intakeError, err.message);
     }

@@ -82,8 +82,22 @@ const P = (() => {
     }
   }
 
-  // Report the value under the pointer for a (rows × cols) array drawn over an element.
+  // Report the value under the pointer for a (rows × cols) array drawn over an element. The element is
+  // also a keyboard stop: arrow keys move a cross-hair one cell (Shift: ten cells) and the read-out follows.
   function hoverReadout(target, getValues, onValue) {
+    const mark = el("span", { class: "crosshair", "aria-hidden": "true" });
+    mark.hidden = true;
+    target.append(mark);
+    const pos = { row: null, col: null };
+    function place(values) {
+      const rows = values.length, cols = values[0].length;
+      mark.style.left = (100 * pos.col / cols) + "%";
+      mark.style.top = (100 * pos.row / rows) + "%";
+      mark.style.width = Math.max(100 / cols, 0.5) + "%";
+      mark.style.height = Math.max(100 / rows, 0.5) + "%";
+      mark.hidden = false;
+      onValue(pos.row, pos.col, values[pos.row][pos.col]);
+    }
     function at(event) {
       const values = getValues();
       if (!values || !values.length) return;
@@ -93,10 +107,27 @@ const P = (() => {
       if (fx < 0 || fy < 0 || fx >= 1 || fy >= 1) return;
       const row = Math.min(values.length - 1, Math.floor(fy * values.length));
       const col = Math.min(values[0].length - 1, Math.floor(fx * values[0].length));
+      mark.hidden = true;
       onValue(row, col, values[row][col]);
     }
+    const steps = { ArrowUp: [-1, 0], ArrowDown: [1, 0], ArrowLeft: [0, -1], ArrowRight: [0, 1] };
+    target.tabIndex = 0;
+    target.addEventListener("keydown", (event) => {
+      const values = getValues();
+      const step = steps[event.key];
+      if (!step || !values || !values.length) return;
+      event.preventDefault();
+      const rows = values.length, cols = values[0].length, k = event.shiftKey ? 10 : 1;
+      if (pos.row === null || pos.row >= rows || pos.col >= cols) { pos.row = rows >> 1; pos.col = cols >> 1; }
+      else {
+        pos.row = Math.max(0, Math.min(rows - 1, pos.row + step[0] * k));
+        pos.col = Math.max(0, Math.min(cols - 1, pos.col + step[1] * k));
+      }
+      place(values);
+    });
     target.addEventListener("mousemove", at);
-    target.addEventListener("mouseleave", () => onValue(null, null, null));
+    target.addEventListener("mouseleave", () => { if (document.activeElement !== target) onValue(null, null, null); });
+    target.addEventListener("blur", () => { mark.hidden = true; pos.row = pos.col = null; onValue(null, null, null); });
   }
 
   // Poll a job until it finishes; onProgress gets each status.
@@ -109,14 +140,16 @@ const P = (() => {
     }
   }
 
+  // The job's own unit (status.unit: patch positions, masks, maps, …) wins over the caller's guess.
   function progressText(status, unit = "steps") {
     if (status.state === "queued") return "waiting for a free worker…";
     if (status.state === "running") {
       const parts = [];
-      if (status.total) parts.push(`${fmtInt(status.done)} of ${fmtInt(status.total)} ${unit}`);
+      if (status.total) parts.push(`${fmtInt(status.done)} of ${fmtInt(status.total)} ${status.unit || unit}`);
       else parts.push("starting…");
       if (status.seconds_left !== null && status.seconds_left !== undefined) {
-        parts.push("about " + fmtSeconds(status.seconds_left) + " left");
+        parts.push("about " + fmtSeconds(status.seconds_left) + " left" +
+                   (status.left_from === "estimate" ? " (from the estimate)" : ""));
       }
       return parts.join(" · ");
     }
@@ -168,7 +201,9 @@ const P = (() => {
   }
 
   // A small line chart as inline SVG: series = [{label, xs, ys, cls}], axes from 0 to the given maxima.
-  function lineChart(series, { xLabel = "", yLabel = "", xMax = 1, yMin = 0, yMax = 1, width = 320, height = 180 } = {}) {
+  // xTicks: the x values to label (default: quarters of xMax), e.g. whole layers.
+  function lineChart(series, { xLabel = "", yLabel = "", xMax = 1, yMin = 0, yMax = 1, width = 320, height = 180,
+                               xTicks = null } = {}) {
     const ns = "http://www.w3.org/2000/svg";
     const make = (tag, attrs) => {
       const node = document.createElementNS(ns, tag);
@@ -182,12 +217,15 @@ const P = (() => {
     const svg = make("svg", { viewBox: `0 0 ${width} ${height}`, width, height, class: "chart", role: "img" });
     svg.append(make("rect", { x: m.l, y: m.t, width: w, height: h, class: "chart-frame" }));
     for (let i = 0; i <= 4; i++) {
-      const yv = yMin + ((yMax - yMin) * i) / 4, xv = (xMax * i) / 4;
+      const yv = yMin + ((yMax - yMin) * i) / 4;
       const ty = make("text", { x: m.l - 4, y: sy(yv) + 3, class: "chart-tick", "text-anchor": "end" });
       ty.textContent = Number(yv.toFixed(2));
+      svg.append(ty);
+    }
+    for (const xv of xTicks || [0, 1, 2, 3, 4].map((i) => (xMax * i) / 4)) {
       const tx = make("text", { x: sx(xv), y: m.t + h + 12, class: "chart-tick", "text-anchor": "middle" });
       tx.textContent = Number(xv.toFixed(2));
-      svg.append(ty, tx);
+      svg.append(tx);
     }
     const xl = make("text", { x: m.l + w / 2, y: height - 4, class: "chart-label", "text-anchor": "middle" });
     xl.textContent = xLabel;
@@ -209,6 +247,57 @@ const P = (() => {
 
   function remember(key, value) { try { localStorage.setItem("pellucid." + key, value); } catch (_) { /* private mode */ } }
   function recall(key) { try { return localStorage.getItem("pellucid." + key); } catch (_) { return null; } }
+
+  // "Add a model" beside the model picker: a spec file from the server's --models folder, chosen by name.
+  async function initAddModel() {
+    const box = $("#add-model");
+    const picker = $("#model-select");
+    if (!box || !picker) return;
+    let listing;
+    try {
+      listing = await api("/api/model-specs");
+    } catch (_) {
+      return; // an older server or a refused request: the picker works without it
+    }
+    if (!listing.available) return;
+    $("#add-model-folder").textContent = listing.folder + "/";
+    const select = $("#add-model-file");
+    const button = $("#add-model-button");
+    const error = $("#add-model-error");
+    function fill(specs) {
+      clear(select);
+      for (const s of specs) {
+        const label = s.error ? `${s.file} (cannot be used: ${s.error})`
+          : `${s.file} · ${s.name}` + (s.served ? " (already on offer)" : "");
+        select.append(el("option", { value: s.file, text: label, disabled: Boolean(s.error) }));
+      }
+      const usable = specs.find((s) => !s.error && !s.served) || specs.find((s) => !s.error);
+      if (usable) select.value = usable.file;
+      button.disabled = !usable;
+      if (!specs.length) select.append(el("option", { value: "", text: "no .toml files in this folder", disabled: true }));
+    }
+    fill(listing.specs);
+    button.addEventListener("click", async () => {
+      showError(error, "");
+      button.disabled = true;
+      try {
+        const added = await api("/api/model-specs", { json: { file: select.value } });
+        if (![...picker.options].some((o) => o.value === added.name)) {
+          picker.append(el("option", { value: added.name, text: added.name }));
+        }
+        picker.value = added.name;
+        picker.dispatchEvent(new Event("change", { bubbles: true }));
+        $("#add-model-note").textContent = added.added ? `Added ${added.name}; it is selected in the model list.`
+          : `${added.name} was already on offer; it is selected in the model list.`;
+        fill((await api("/api/model-specs")).specs);
+      } catch (err) {
+        showError(error, err.message);
+        button.disabled = false;
+      }
+    });
+    box.hidden = false;
+  }
+  initAddModel();
 
   return { api, el, $, clear, fmt, fmtInt, fmtSeconds, showError, fillSelect, hoverReadout, followJob,
            progressText, paramInputs, readParams, remember, recall, lineChart };

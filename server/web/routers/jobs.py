@@ -101,6 +101,9 @@ def start_job(body: JobRequest, request: Request, ws: Workspace = Depends(get_wo
     # Refused here, as a 4xx, rather than as a failed job: a layer Grad-CAM cannot use, a patch
     # larger than the input (each method's own check, shared with the CLI and the audit).
     params = check_request(method.name, lm.module, lm.input_shape, body.params)
+    if params.get("baseline") == "custom":
+        raise BadParameterError("baseline 'custom' needs a reference picture, which the JSON API does not take; "
+                                "choose another baseline (the Python API takes one as baseline_input)")
     ws.check_job(lm, method.name, params)  # memory and occlusion-grid limits, refused before the job starts
     client = request.client.host if request.client else None
     image = ws.image(body.image)

@@ -132,6 +132,7 @@ const P = (() => {
 
   // Poll a job until it finishes; onProgress gets each status.
   async function followJob(jobId, onProgress, intervalMs = 150) {
+    document.dispatchEvent(new CustomEvent("pellucid:job-started", { detail: { id: jobId } }));  // the jobs panel's count
     for (;;) {
       const status = await api("/api/jobs/" + encodeURIComponent(jobId));
       onProgress(status);

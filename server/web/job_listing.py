@@ -47,14 +47,14 @@ def _image_name(ws: Workspace, sha256: str | None) -> str | None:
     return held.name if held is not None else None
 
 
-def _audit_model(app_state: Any, run_id: str | None, cache: dict[str, str | None]) -> str | None:
+def _audit_model(ws: Workspace, app_state: Any, run_id: str | None, cache: dict[str, str | None]) -> str | None:
     if not run_id:
         return None
     if run_id not in cache:
-        store = getattr(app_state, "audit_store", None)
         try:
-            cache[run_id] = store.get_run(run_id).model_name if store is not None else None
-        except PellucidError:  # deleted meanwhile: the job still lists, without its model
+            store = getattr(app_state, "audit_store", None) or ws.store
+            cache[run_id] = store.get_run(run_id).model_name
+        except PellucidError:  # deleted meanwhile, or the store cannot open: the job lists without its model
             cache[run_id] = None
     return cache[run_id]
 
@@ -75,7 +75,7 @@ def describe(job: Job, base: JobStatus, *, ws: Workspace, live: dict | None, app
         given.pop("unit", None)
         given.pop("phase", None)
         extra.update(phase=phase, run_id=run_id, unit=progress_unit("audit", phase=phase),
-                     model=_audit_model(app_state, run_id, models_of_runs),
+                     model=_audit_model(ws, app_state, run_id, models_of_runs),
                      link=f"/audits?run={quote(run_id)}" if run_id else None)
     else:
         meta = job.meta

@@ -49,8 +49,8 @@ def _read(root: Path, path: Path) -> SpecFile:
         return SpecFile(rel, path, error=f"{size:,} bytes, more than a spec file can be ({MAX_SPEC_BYTES:,})")
     try:
         spec = ModelSpec.from_toml(path)
-    except PellucidError as exc:
-        return SpecFile(rel, path, error=str(exc))
+    except PellucidError as exc:  # named by its place in the folder: the server's own paths stay private
+        return SpecFile(rel, path, error=str(exc).replace(str(path), rel))
     except OSError as exc:
         return SpecFile(rel, path, error=f"cannot be read ({exc.strerror or exc})")
     return SpecFile(rel, path, name=spec.name, description=spec.description)

@@ -371,9 +371,11 @@
     if (est.seconds === null || est.seconds === undefined) return `${what}: ${fmtInt(est.forwards)} forward-pass equivalents.`;
     const perForward = est.forwards ? est.seconds / est.forwards : null;
     const bound = est.method === "occlusion" ? "at most " : "about ";
-    return `${what}: ${bound}${fmtSeconds(est.seconds)} on this server — ${fmtInt(Math.round(est.forwards))} ` +
-      `forward-pass equivalents (a backward pass counts as two)` +
-      (perForward ? ` × ${fmtSeconds(perForward)} measured per forward pass` : "") + ".";
+    return `${what}: ${bound}${fmtSeconds(est.seconds)} on this server — ` +
+      (est.positions ? `${fmtInt(est.positions)} patch positions, ` : "") +
+      `${fmtInt(Math.round(est.forwards))} forward-pass equivalents (a backward pass counts as two)` +
+      (perForward ? ` × ${perForward < 0.01 ? (perForward * 1000).toFixed(2) + " ms" : fmtSeconds(perForward)} ` +
+                    "measured per forward pass" : "") + ".";
   }
 
   async function fetchEstimate() {

@@ -184,6 +184,8 @@ def image_maps(image_id: str, model: str | None = Query(None), ws: Workspace = D
     stored = ws.stored_image(image_id)
     fingerprint = ws.model(model).fingerprint if model else None
     maps = ws.workbench.maps_for(stored.sha256, model_fingerprint=fingerprint)
+    if model:  # the same weights may be served under two names; a map belongs to the name it was made with
+        maps = [m for m in maps if m.model_name == model]
     return MapList(image=stored.sha256, model=model, maps=[map_summary(m) for m in maps])
 
 

@@ -114,7 +114,9 @@ def start_job(body: JobRequest, request: Request, ws: Workspace = Depends(get_wo
         with_target = lm.class_index(body.target)
     key = result_key(model=lm.fingerprint, image=image.sha256, method=method.name,
                      params={**params, "target": with_target})
-    rid = _result_id(key)
+    # The model's name is part of the id: two names may serve the same weights, and a map is listed and
+    # linked under the name it was made with.
+    rid = _result_id([lm.name, *key])
     description = f"{method.title} · {lm.name} · {image.name}"
     meta = {"result_id": rid, "model": lm.name, "image": image.sha256, "image_name": image.name,
             "method": method.name}

@@ -67,7 +67,7 @@ def test_full_audit_through_the_api(client: TestClient) -> None:
     assert statuses == sorted(statuses, key=lambda st: st != "fail")
     assert entry["gate"] == ("pass" if gate["passed"] else "fail")
     assert run["injection_sentence"].startswith("Pasting the suspect patch")
-    assert s["injection"]["settings"]["source"] == "demo tag"
+    assert s["injection"]["settings"]["source"].endswith("policy-demo-tag.png")  # as `--inject-patch FILE` says
     assert "evidence" in run["caution"]
 
     flagged = client.get(f"/api/audits/runs/{run_id}/flagged").json()

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import shlex
 import sys
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -68,6 +67,8 @@ def register(sub: argparse._SubParsersAction) -> None:
                         "'random' for a seeded random place in each image")
     p.add_argument("--inject-class", default=None, metavar="CLASS", help="the class the patch is suspected to cue")
     p.add_argument("--inject-limit", type=int, default=None, metavar="N", help="test at most N images")
+    p.add_argument("--inject-seed", type=int, default=0, metavar="N",
+                   help="with --inject-at random: the seed the places are drawn from (default 0)")
     p.add_argument("--no-discovery", dest="discovery", action="store_false",
                    help="skip discovery (clusters of each class's maps) and confirmation; both run by default")
     p.add_argument("--no-confirmation", dest="confirmation", action="store_false",
@@ -150,9 +151,12 @@ def build_injection(args: argparse.Namespace, model: Any, policy: Any) -> Any | 
             source = f"file {args.inject_patch.resolve()}"
         else:
             raise BadParameterError("--inject-class needs a patch: --inject-patch PNG or --inject-from IMAGE")
+        seed = getattr(args, "inject_seed", 0) or 0
+        if seed and at != "random":
+            raise BadParameterError("--inject-seed only applies with --inject-at random")
         return InjectionSpec(patch=patch, suspect_class=args.inject_class,
                              at=at if at == "random" else (int(at[0]), int(at[1])),
-                             source=source, limit=args.inject_limit)
+                             source=source, limit=args.inject_limit, seed=seed)
     if policy is not None and policy.injection is not None:
         inj = policy.injection
         if not inj.patch.is_file():
@@ -163,40 +167,22 @@ def build_injection(args: argparse.Namespace, model: Any, policy: Any) -> Any | 
 
 
 def _command(args: argparse.Namespace) -> str:
-    """The command that re-runs this audit, with absolute paths."""
-    parts = ["pellucid", "audit", "--model", str(Path(args.model).resolve()) if Path(args.model).exists()
-             else args.model, "--images", str(args.images.resolve()), "--out", str(args.out.resolve())]
-    if args.policy:
-        parts += ["--policy", str(args.policy.resolve())]
-    parts += ["--method", args.method]
-    for p in args.param:
-        parts += ["--param", p]
-    parts += ["--target", args.target]
-    if args.store:
-        parts += ["--store", str(args.store.resolve())]
-    for flag, value in (("--inject-patch", args.inject_patch), ("--inject-from", args.inject_from)):
-        if value is not None:
-            parts += [flag, str(value.resolve())]
-    for flag, value in (("--inject-box", args.inject_box), ("--inject-at", args.inject_at),
-                        ("--inject-class", args.inject_class), ("--inject-limit", args.inject_limit),
-                        ("--gallery-layer", args.gallery_layer)):
-        if value is not None:
-            parts += [flag, str(value)]
-    if args.gallery_layer:
-        parts += ["--gallery-top", str(args.gallery_top)]
-    if args.background_swap:
-        parts.append("--background-swap")
-    if getattr(args, "channel_layer", None):
-        parts += ["--channel-layer", args.channel_layer]
-    if not getattr(args, "discovery", True):
-        parts.append("--no-discovery")
-    elif not getattr(args, "confirmation", True):
-        parts.append("--no-confirmation")
-    if args.shard_size != 8:
-        parts += ["--shard-size", str(args.shard_size)]
-    if args.threads != 1:
-        parts += ["--threads", str(args.threads)]
-    return shlex.join(parts)
+    """The command that re-runs this audit, with absolute paths (built by ``core/audit/command.py``)."""
+    from pellucid.core.audit.command import audit_command
+
+    def absolute(path: Path | None) -> str | None:
+        return str(path.resolve()) if path is not None else None
+
+    return audit_command(
+        model=str(Path(args.model).resolve()) if Path(args.model).exists() else args.model,
+        images=str(args.images.resolve()), out=str(args.out.resolve()), policy=absolute(args.policy),
+        method=args.method, params=args.param, target=args.target, store=absolute(args.store),
+        inject_patch=absolute(args.inject_patch), inject_from=absolute(args.inject_from),
+        inject_box=args.inject_box, inject_at=args.inject_at, inject_class=args.inject_class,
+        inject_limit=args.inject_limit, inject_seed=getattr(args, "inject_seed", 0) or 0,
+        gallery_layer=args.gallery_layer, gallery_top=args.gallery_top, background_swap=args.background_swap,
+        channel_layer=getattr(args, "channel_layer", None), discovery=getattr(args, "discovery", True),
+        confirmation=getattr(args, "confirmation", True), shard_size=args.shard_size, threads=args.threads)
 
 
 def _resolve_method(args: argparse.Namespace, policy: Any) -> None:

@@ -57,9 +57,12 @@ from typing import Any
 from pellucid.core.errors import SpecError
 
 __all__ = [
+    "AUDIT_KEYS",
     "CLASS_THRESHOLDS",
+    "INJECTION_KEYS",
     "RUN_THRESHOLDS",
     "THRESHOLDS",
+    "UNITS",
     "Check",
     "InjectionPolicy",
     "Policy",
@@ -70,6 +73,7 @@ __all__ = [
     "gate_sentence",
     "load_policy",
     "parse_policy",
+    "policy_keys",
 ]
 
 # key → (scope, kind, comparison, what it measures)
@@ -104,11 +108,30 @@ THRESHOLDS: dict[str, tuple[str, str, str, str]] = {
 # Checked at this limit when a policy does not set it and the audit ran confirmation (the default
 # audit does): a policy written before discovery existed still fails a confirmed shortcut.
 DEFAULT_MAX_CONFIRMED_SHORTCUTS = 0.0
+# What a threshold's number is, by its kind: the editor and the README show it beside each key.
+UNITS: dict[str, str] = {
+    "fraction": "a share from 0 to 1 (0.2 = 20%)",
+    "signed": "a change from -1 to 1 (in probability or accuracy)",
+    "count": "a whole number of images or clusters, 0 or more",
+}
+# The [injection] and [audit] keys, with what each means (the policy editor lists them from here).
+INJECTION_KEYS: dict[str, str] = {
+    "patch": "the suspect patch: a picture file, relative to the policy file",
+    "suspect_class": "the class the patch is suspected to cue (a label of the model)",
+    "at": "top-left [x, y] in model-input pixels where the patch is pasted, or \"random\" (one place per image)",
+    "seed": "with at = \"random\": the places are drawn from this seed (whole number, 0 or more)",
+    "limit": "test at most this many images (whole number, 1 or more; none: every image of the other classes)",
+}
+AUDIT_KEYS: dict[str, str] = {
+    "method": "the attribution method the thresholds were set for; the command line may override it",
+    "params": "the method's parameters, e.g. { patch = 16, stride = 8 } for occlusion",
+    "target": "\"label\" explains each image's true label (default), \"predicted\" the model's call",
+}
 CLASS_THRESHOLDS = tuple(k for k, v in THRESHOLDS.items() if v[0] == "class")
 RUN_THRESHOLDS = tuple(k for k, v in THRESHOLDS.items() if v[0] == "run")
 _TOP_KEYS = {"name", "description", "thresholds", "classes", "injection", "audit"}
-_INJECTION_KEYS = {"patch", "suspect_class", "at", "limit", "seed"}
-_AUDIT_KEYS = {"method", "params", "target"}
+_INJECTION_KEYS = set(INJECTION_KEYS)
+_AUDIT_KEYS = set(AUDIT_KEYS)
 
 
 @dataclass(frozen=True)
@@ -266,6 +289,17 @@ def _audit_table(table: Any, where: str) -> tuple[str | None, dict, str | None]:
     if target is not None and target not in ("label", "predicted"):
         raise SpecError(f"{where}: audit.target must be \"label\" or \"predicted\"; received {target!r}")
     return method, dict(params), target
+
+
+def policy_keys() -> dict:
+    """Every key a policy may hold, with its scope, unit and meaning (for forms and documentation)."""
+    return {
+        "thresholds": [{"key": k, "scope": scope, "kind": kind, "unit": UNITS[kind],
+                        "comparison": cmp, "meaning": meaning}
+                       for k, (scope, kind, cmp, meaning) in THRESHOLDS.items()],
+        "injection": [{"key": k, "meaning": v} for k, v in INJECTION_KEYS.items()],
+        "audit": [{"key": k, "meaning": v} for k, v in AUDIT_KEYS.items()],
+    }
 
 
 def load_policy(path: str | Path) -> Policy:

@@ -529,6 +529,11 @@ def factory_fingerprint(*, weights_sha256: str, factory: str, source: Path | Non
     return hashlib.sha256(("\n".join(lines) + "\n").encode()).hexdigest()
 
 
+def spec_labels(spec: ModelSpec) -> list[str]:
+    """The class labels a spec names (inline, from its file, or a built-in set), without loading the model."""
+    return _labels_for(spec)
+
+
 def _labels_for(spec: ModelSpec) -> list[str]:
     if spec.output.labels:
         return list(spec.output.labels)

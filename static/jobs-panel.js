@@ -22,6 +22,8 @@
   };
   const STATES = { queued: "waiting", running: "running", done: "finished", failed: "failed", cancelled: "cancelled" };
   const rows = new Map(); // job id → its list item's parts
+  const announce = document.getElementById("jobs-announce");
+  const lastStates = new Map(); // job id → state at the last poll, to announce a job that ends
   let timer = null;
   let busy = false;
 
@@ -168,6 +170,20 @@
     toggle.title = active ? `${active} job(s) queued or running` : "no job queued or running";
   }
 
+  // A screen reader hears when a job it could have watched ends, whether or not the panel is open.
+  function announceEnded(jobs) {
+    const ended = [];
+    for (const job of jobs) {
+      const before = lastStates.get(job.id);
+      if ((before === "queued" || before === "running") && !(job.state === "queued" || job.state === "running")) {
+        ended.push(`${TITLES[job.kind] || job.kind} ${STATES[job.state] || job.state}`);
+      }
+    }
+    lastStates.clear();
+    for (const job of jobs) lastStates.set(job.id, job.state);
+    if (ended.length) announce.textContent = ended.join("; ") + ".";
+  }
+
   async function refresh() {
     let body;
     try {
@@ -181,6 +197,7 @@
     }
     errorBox.hidden = true;
     setCount(body.active);
+    announceEnded(body.jobs);
     busy = body.active > 0;
     if (!panel.hidden) render(body);
     panel.dataset.loaded = "true";

@@ -123,6 +123,8 @@ def test_panel_lists_and_cancels_a_running_weight_randomisation_check(server: st
         slow_down(0)
     assert not row.locator("button.job-cancel").is_visible()
     assert "stopped after" in row.locator(".job-line").inner_text()
+    page.wait_for_function("document.querySelector('#jobs-announce').textContent"
+                           ".includes('Weight-randomisation check cancelled')")  # said to screen readers
     with httpx.Client(base_url=server, timeout=60) as c:
         assert c.get(f"/api/jobs/{check['id']}").json()["state"] == "cancelled"
     # The finished map's row links to the image page with that map open.

@@ -668,10 +668,10 @@
     try {
       const est = await api(`/api/results/${r.id}/estimate?check=${kind}`);
       if (!est.done) {
-        $("#method-cost").textContent = `${what}: ${fmtInt(est.count)} ${est.units}, ` +
+        $("#method-cost").textContent = `${what}: about ${fmtInt(est.count)} ${est.units}, ` +
           (est.seconds === null ? `${fmtInt(Math.round(est.forwards))} forward-pass equivalents.` : `about ${fmtSeconds(est.seconds)} on this server.`);
         if (est.seconds !== null && est.seconds > COST_CONFIRM_SECONDS &&
-            !(await confirmCost(`${what} of this map: ${fmtInt(est.count)} ${est.units}, about ${fmtSeconds(est.seconds)} ` +
+            !(await confirmCost(`${what} of this map: about ${fmtInt(est.count)} ${est.units}, about ${fmtSeconds(est.seconds)} ` +
                                 `on this server (${fmtInt(Math.round(est.forwards))} forward-pass equivalents). ` +
                                 `That is more than ${COST_CONFIRM_SECONDS} s. Start it?`))) return;
       }

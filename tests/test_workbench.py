@@ -161,3 +161,12 @@ def test_result_names_its_unit_and_warns_on_a_flat_map(web_settings) -> None:
         assert body["unit"] == "probability drop (0–1)"
         assert "when this area is hidden" in body["value_label"]
         assert body["warning"] and "zero everywhere" in body["warning"]
+
+
+def test_a_custom_baseline_is_refused_in_one_sentence(web_settings) -> None:
+    with TestClient(create_app(web_settings)) as client:
+        image = _upload(client, TAGGED, "tagged.png")["id"]
+        r = client.post("/api/jobs", json={"image": image, "method": "integrated_gradients",
+                                           "params": {"baseline": "custom"}})
+        _plain_error(r, 422, "custom", "another baseline")
+        assert client.get("/api/jobs").json()["active"] == 0

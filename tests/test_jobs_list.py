@@ -154,3 +154,29 @@ def test_work_that_finished_before_a_late_cancel_is_done() -> None:
 def test_the_jobs_list_is_in_the_api_description(slow_client: TestClient) -> None:
     paths = slow_client.get("/openapi.json").json()["paths"]
     assert "get" in paths["/api/jobs"] and "post" in paths["/api/jobs"]
+
+
+def test_cancel_reaches_the_occlusion_engine_choice() -> None:
+    """A cancel that arrives while occlusion's 'auto' engine is being chosen (a sanity check's later
+    maps on a large model spend seconds there) stops the map before any occluded copy is evaluated."""
+    import torch
+
+    from pellucid.core.errors import Cancelled
+    from pellucid.core.occlusion.engine import occlusion_map
+    from pellucid.core.progress import CancelToken
+
+    torch.manual_seed(0)
+    model = torch.nn.Sequential(
+        torch.nn.Conv2d(3, 8, 3, padding=1), torch.nn.ReLU(), torch.nn.Conv2d(8, 8, 3, padding=1), torch.nn.ReLU(),
+        torch.nn.AdaptiveAvgPool2d(1), torch.nn.Flatten(), torch.nn.Linear(8, 4)).eval()
+    x = torch.rand(1, 3, 64, 64)
+    token, calls = CancelToken(), []
+
+    def cancel_after_the_clean_pass(_module, _inputs, _output) -> None:
+        calls.append(1)
+        token.cancel()  # the clean image's forward has run: from now on the map is unwanted
+
+    model.register_forward_hook(cancel_after_the_clean_pass)
+    with pytest.raises(Cancelled):
+        occlusion_map(model, x, patch=8, stride=2, method="auto", cancel=token)
+    assert len(calls) == 1  # no occluded copy went through the model after the cancel

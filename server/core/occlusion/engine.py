@@ -343,7 +343,7 @@ def occlusion_map(
         ty = torch.as_tensor(tops).repeat_interleave(len(lefts))
         tx = torch.as_tensor(lefts).repeat(len(tops))
         choice = _choose_engine(model, x, base, patch, "auto" if method == "approximate" else method, batch_size,
-                                (len(tops), len(lefts)), ty, tx)
+                                (len(tops), len(lefts)), ty, tx, cancel=cancel)
         engine, bs, details = choice.name, choice.batch_size, dict(choice.details)
         if method == "approximate":
             from pellucid.core.occlusion.approximate import approximate_grid
@@ -439,6 +439,7 @@ def _choose_engine(
     grid_shape: tuple[int, int],
     ty: torch.Tensor,
     tx: torch.Tensor,
+    cancel: CancelToken | None = None,
 ) -> _Choice:
     """Pick the engine for ``method``.
 
@@ -446,6 +447,7 @@ def _choose_engine(
     positions spread over the grid (corners included), then one warm batch of each engine is timed
     on positions of this grid and the faster per position evaluates the rest. Every position
     evaluated while choosing is exact and kept, so choosing costs little beyond the setup.
+    ``cancel`` is checked between the stages (on a large model each takes seconds).
     """
     rows, cols = grid_shape
     n = rows * cols
@@ -485,6 +487,8 @@ def _choose_engine(
         engine = IncrementalOcclusion(model, x, base, patch=patch, self_check=False)
     except NotIncremental as exc:
         return refuse(str(exc))
+    if cancel is not None:
+        cancel.raise_if_cancelled()
     details: dict[str, Any] = {"estimated_speedup": engine.estimated_speedup, "ideal_speedup": engine.ideal_speedup}
     if method == "auto" and engine.estimated_speedup < RACE_BELOW:
         return _Choice("batched", batched, batched_bs, {
@@ -495,6 +499,8 @@ def _choose_engine(
     check = _check_positions(rows, cols, CHECK_POSITIONS if method == "auto" else 3)
     sel = torch.as_tensor(check)
     ref = batched(ty[sel], tx[sel])
+    if cancel is not None:
+        cancel.raise_if_cancelled()
     try:
         got = engine.logits(ty[sel], tx[sel])
     except Exception as exc:  # noqa: BLE001 — any failure refuses the engine, never the map
@@ -522,11 +528,15 @@ def _choose_engine(
     rest = np.concatenate([b for b in pending if b is not inc_idx])
     bat_idx = rest[len(rest) // 2 : len(rest) // 2 + batched_bs]
     sel = torch.as_tensor(bat_idx)
+    if cancel is not None:
+        cancel.raise_if_cancelled()
     t0 = time.perf_counter()
     out = batched(ty[sel], tx[sel])
     t_bat = (time.perf_counter() - t0) / len(bat_idx)
     known.update({int(i): row for i, row in zip(bat_idx.tolist(), out)})
     sel = torch.as_tensor(inc_idx)
+    if cancel is not None:
+        cancel.raise_if_cancelled()
     t0 = time.perf_counter()
     out = engine.logits(ty[sel], tx[sel])
     t_inc = (time.perf_counter() - t0) / len(inc_idx)

@@ -152,6 +152,7 @@ def test_panel_cancels_a_running_audit_and_links_its_run(server: str, page) -> N
         page.wait_for_function(f"document.querySelector('{selector}').dataset.state === 'cancelled'")
     finally:
         slow_down(0)
+    assert "of 40 images" in row.locator(".job-line").inner_text()
     href = row.locator("a.job-link").get_attribute("href")
     assert href.startswith("/audits?run=")
     run_id = href.split("=", 1)[1]

@@ -116,6 +116,8 @@ def test_an_audit_is_listed_with_its_run_and_cancelled_in_the_store(slow_client:
     assert row["state"] == "cancelled"
     run = slow_client.get(f"/api/audits/runs/{row['run_id']}").json()
     assert run["status"] == "cancelled" and run["done"] < 40
+    # Once ended, the listing counts what the stored run holds, in images, whatever phase it stopped in.
+    assert (row["done"], row["total"], row["unit"]) == (run["done"], 40, "images")
 
 
 def test_unknown_job_cannot_be_cancelled(slow_client: TestClient) -> None:

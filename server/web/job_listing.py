@@ -47,20 +47,21 @@ def _image_name(ws: Workspace, sha256: str | None) -> str | None:
     return held.name if held is not None else None
 
 
-def _audit_model(ws: Workspace, app_state: Any, run_id: str | None, cache: dict[str, str | None]) -> str | None:
+def _audit_run(ws: Workspace, app_state: Any, run_id: str | None, cache: dict[str, Any]) -> Any:
+    """The stored run an audit job writes (None before it exists, once deleted, or without a store)."""
     if not run_id:
         return None
     if run_id not in cache:
         try:
             store = getattr(app_state, "audit_store", None) or ws.store
-            cache[run_id] = store.get_run(run_id).model_name
-        except PellucidError:  # deleted meanwhile, or the store cannot open: the job lists without its model
+            cache[run_id] = store.get_run(run_id)
+        except PellucidError:  # deleted meanwhile, or the store cannot open: the job lists without it
             cache[run_id] = None
     return cache[run_id]
 
 
 def describe(job: Job, base: JobStatus, *, ws: Workspace, live: dict | None, app_state: Any,
-             models_of_runs: dict[str, str | None]) -> JobStatus:
+             runs: dict[str, Any]) -> JobStatus:
     """``base`` (the job's own status) with what it works on, its unit and its link filled in.
 
     Fields the base already carries are kept: the router that started the job knows best.
@@ -71,12 +72,19 @@ def describe(job: Job, base: JobStatus, *, ws: Workspace, live: dict | None, app
     if job.kind == "audit":
         phase = (live or {}).get("phase")
         run_id = (live or {}).get("run_id") or given.get("run_id")
+        run = _audit_run(ws, app_state, run_id, runs)
         # The live record is the truth about an audit's phase: it decides what the count counts.
         given.pop("unit", None)
         given.pop("phase", None)
         extra.update(phase=phase, run_id=run_id, unit=progress_unit("audit", phase=phase),
-                     model=_audit_model(ws, app_state, run_id, models_of_runs),
+                     model=run.model_name if run is not None else None,
                      link=f"/audits?run={quote(run_id)}" if run_id else None)
+        if run is not None and job.state not in (QUEUED, RUNNING):
+            # Once it has ended, the stored run says how far it got, in images, whatever phase it ended in.
+            for key in ("done", "total", "fraction", "unit"):
+                given.pop(key, None)
+            extra.update(done=run.done, total=run.total, unit="images",
+                         fraction=run.done / run.total if run.total else 0.0)
     else:
         meta = job.meta
         model, image = meta.get("model"), meta.get("image")
@@ -89,8 +97,8 @@ def describe(job: Job, base: JobStatus, *, ws: Workspace, live: dict | None, app
 def job_list(ws: Workspace, app_state: Any, *, status_of: Callable[[Job], JobStatus]) -> JobList:
     """All jobs: queued and running first, then finished ones, newest first within each."""
     live = audit_live_records(ws, app_state)
-    models_of_runs: dict[str, str | None] = {}
+    runs: dict[str, Any] = {}  # stored runs read for this listing, by id
     jobs = sorted(ws.jobs.list(), key=lambda j: (j.state not in (QUEUED, RUNNING), -j.created))
     rows = [describe(j, status_of(j), ws=ws, live=live.get(j.id), app_state=app_state,
-                     models_of_runs=models_of_runs) for j in jobs]
+                     runs=runs) for j in jobs]
     return JobList(jobs=rows, active=sum(1 for j in jobs if j.state in (QUEUED, RUNNING)))

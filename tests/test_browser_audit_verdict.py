@@ -83,7 +83,7 @@ def test_run_view_shows_verdict_counts_and_unreadable_images(server, audited):
             page = browser.new_page(viewport={"width": 1280, "height": 900})
             page.set_default_timeout(30_000)
             page.goto(f"{server}/audits?run={run_id}")
-            page.locator("#run-view:not([hidden])").wait_for()
+            page.locator(f"#run-view[data-loaded='{run_id}']").wait_for()  # every part drawn
             page.locator("#unreadable-box:not([hidden])").wait_for()
             verdict = page.locator("#run-verdict").inner_text()
             assert "Gate FAIL under policy “strict gate”" in verdict and "Stored with the run" in verdict

@@ -196,13 +196,16 @@
       showError($("#plan-error"), err.message);
       return null;
     }
+    const slow = setTimeout(() => { $("#plan-cost").textContent = "Checking the folder and measuring the model…"; }, 600);
     try {
       const out = await api("/api/audits/estimate", { json: body });
+      clearTimeout(slow);
       if (serial !== planSerial) return null;
       showError($("#plan-error"), "");
       renderPlan(out.plan, out.cost);
       return { body, ...out };
     } catch (err) {
+      clearTimeout(slow);
       if (serial === planSerial) {
         clear($("#plan-list"));
         $("#plan-cost").textContent = "";
@@ -286,10 +289,14 @@
     event.preventDefault();
     showError($("#start-error"), "");
     try {
-      const planned = await plan();
-      if (!planned) throw new Error($("#plan-error").textContent || "the audit could not be planned");
+      clearTimeout(planTimer);
+      planSerial += 1;  // a plan still on its way is out of date
+      const body = buildRequest();
+      const planned = await api("/api/audits/estimate", { json: body });
+      showError($("#plan-error"), "");
+      renderPlan(planned.plan, planned.cost);
       if (!(await confirmCost(planned.cost))) return;
-      const job = await api("/api/audits", { json: planned.body });
+      const job = await api("/api/audits", { json: body });
       showJob(job);
       pendingRow(job);
       await follow(job.id);
@@ -341,10 +348,11 @@
     showError($("#runs-error"), "");
     let data;
     try { data = await api("/api/audits/runs"); } catch (err) { showError($("#runs-error"), err.message); return; }
+    const keep = new Set(ticked());  // the list is redrawn while an audit runs: ticks stay
     const body = clear($("#runs-table tbody"));
     $("#runs-empty").hidden = data.runs.length > 0;
     for (const run of data.runs) {
-      const box = el("input", { type: "checkbox", value: run.id, "aria-label": "tick run " + run.id + " to compare",
+      const box = el("input", { type: "checkbox", value: run.id, checked: keep.has(run.id), "aria-label": "tick run " + run.id + " to compare",
                                 onchange: () => { $("#compare-button").disabled = ticked().length !== 2; } });
       const actions = el("td", { class: "actions" }, [
         el("button", { type: "button", class: "link", text: "open", onclick: () => openRun(run.id) }),

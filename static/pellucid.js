@@ -127,7 +127,8 @@ const P = (() => {
     });
     target.addEventListener("mousemove", at);
     target.addEventListener("mouseleave", () => { if (document.activeElement !== target) onValue(null, null, null); });
-    target.addEventListener("blur", () => { mark.hidden = true; pos.row = pos.col = null; onValue(null, null, null); });
+    // On blur the last value stays readable (changing the text now could move what is being clicked).
+    target.addEventListener("blur", () => { mark.hidden = true; pos.row = pos.col = null; });
   }
 
   // Poll a job until it finishes; onProgress gets each status.

@@ -159,6 +159,13 @@ def test_reload_and_a_server_restart_keep_the_page_and_its_maps(settings, browse
             page.locator("#result-view").wait_for(state="visible")
             assert page.inner_text("#result-title") == title
             assert page.input_value("#method-select") == "gradcam"
+            # Another image is a new history entry: Back brings the first image and its map again.
+            _open_sample(page, "tile-0.png")
+            assert page.locator("#result-view").is_hidden()
+            page.go_back()
+            page.wait_for_function("document.querySelector('#image-name').textContent === 'tile-2.png'")
+            page.locator("#result-view").wait_for(state="visible")
+            assert page.inner_text("#result-title") == title
         page.goto("about:blank")
         # A new server process over the same store folder, on the same address.
         with live_server(dataclasses.replace(fresh, port=int(port))) as again:
@@ -168,7 +175,7 @@ def test_reload_and_a_server_restart_keep_the_page_and_its_maps(settings, browse
             assert page.inner_text("#result-title") == title
             assert page.inner_text("#image-name") == "tile-2.png"
             assert page.locator("#result-strip .strip-item").count() == 1
-            assert page.locator("#recent li").count() == 1
+            assert page.locator("#recent li").count() == 2  # tile-2 and tile-0, both kept in the store
             _shot(page, "durable-after-restart")
     finally:
         context.close()
@@ -222,6 +229,15 @@ def test_map_read_out_by_keyboard_and_no_hidden_tab_stops(server: str, page) -> 
     shown = float(readout.split(":")[1].split("·")[0])
     assert abs(shown - values[row][col]) <= max(5e-5, 5e-4 * abs(values[row][col]))
     _shot(page, "durable-keyboard-readout")
+    # The weight-randomisation chart counts whole steps: every label on its x axis is an integer
+    # (common practice, no source: a count has no fractions).
+    page.click("#sanity-button")  # straight from the focused map: the click must land
+    page.locator("#sanity-chart").wait_for()
+    ticks = page.locator("#sanity-chart text.chart-tick[text-anchor='middle']").evaluate_all(
+        "nodes => nodes.map((n) => n.textContent)")
+    assert ticks and all(t.strip().isdigit() for t in ticks), ticks
+    page.locator("#sanity-out").scroll_into_view_if_needed()
+    page.screenshot(path=str(SCREENSHOTS / "durable-sanity-chart.png"))
     # Walk the whole page by Tab: no stop on an element that cannot be seen (the hidden file input).
     page.locator("body").focus()
     seen = []
@@ -267,3 +283,19 @@ def test_side_by_side_cancels_both_jobs_and_says_when_models_differ(server: str,
     assert "zero everywhere" in page.inner_text("#warning-a") and "zero everywhere" in page.inner_text("#warning-b")
     assert page.locator("#stack-a").is_visible() and page.locator("#stack-b").is_visible()
     _shot(page, "durable-compare-two-models")
+
+
+def test_a_new_job_clears_the_last_error(server: str, page) -> None:
+    page.goto(server + "/image?model=slowtile")
+    _ready(page)
+    _open_sample(page, "tile-2.png")
+    page.select_option("#method-select", "occlusion")
+    _set_params(page, patch=0)
+    page.click("#run-button")
+    page.locator("#job-error").wait_for(state="visible")
+    assert "patch" in page.inner_text("#job-error")
+    _set_params(page, patch=8, stride=8)
+    page.click("#run-button")
+    page.locator("#result-view").wait_for(state="visible")
+    assert page.locator("#job-error").is_hidden()
+    assert "finished" in page.inner_text("#job-text")

@@ -175,14 +175,20 @@ def colorbar_png(*, vmin: float, vmax: float, cmap: str = MAGNITUDE_CMAP, label:
                  width_px: int = 360, height_px: int = 64) -> bytes:
     """A horizontal colour bar with numbers, as PNG bytes."""
     from matplotlib.figure import Figure  # here: importing it costs more than the rest of this module
+    from matplotlib.ticker import MaxNLocator
 
     dpi = 100
     fig = Figure(figsize=(width_px / dpi, height_px / dpi), dpi=dpi)
-    ax = fig.add_axes((0.05, 0.55, 0.9, 0.3))
+    ax = fig.add_axes((0.05, 0.52, 0.9, 0.28))
     gradient = np.linspace(vmin, vmax, 256)[None, :]
     ax.imshow(gradient, aspect="auto", cmap=colormaps[cmap], extent=(vmin, vmax, 0, 1), vmin=vmin, vmax=vmax)
     ax.set_yticks([])
     ax.tick_params(labelsize=7)
+    # Five ticks at most, and tiny or huge ranges with a shared power of ten (×1e-4 at the end), so
+    # the labels of a 0–0.0002 scale do not run into each other.
+    ax.xaxis.set_major_locator(MaxNLocator(5))
+    ax.ticklabel_format(axis="x", style="sci", scilimits=(-3, 4))
+    ax.xaxis.get_offset_text().set_fontsize(7)
     if label:
         ax.set_title(label, fontsize=7, pad=2)
     buf = io.BytesIO()

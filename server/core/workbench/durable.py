@@ -32,7 +32,7 @@ from pellucid.core.errors import NotFoundError
 from pellucid.core.model.preprocess import IntakeImage
 from pellucid.core.views import render
 
-__all__ = ["THUMBNAIL_SIDE", "StoredImage", "StoredMap", "Workbench", "png_of"]
+__all__ = ["THUMBNAIL_SIDE", "StoredImage", "StoredMap", "Workbench", "overlay_thumbnail", "png_of"]
 
 THUMBNAIL_SIDE = 96
 CHECK_KINDS = ("faithfulness", "sanity")
@@ -50,6 +50,20 @@ def _thumbnail(pil: Image.Image) -> bytes:
     small = pil.convert("RGB")
     small.thumbnail((THUMBNAIL_SIDE, THUMBNAIL_SIDE))
     return png_of(np.asarray(small))
+
+
+def overlay_thumbnail(display: np.ndarray, values: np.ndarray, *, cmap: str, vmin: float,
+                      vmax: float) -> np.ndarray:
+    """(H, W, 3) uint8 input and (H, W) map → a small (h, w, 3) uint8 overlay for lists of maps.
+
+    Tiny inputs (32 px) are scaled up by whole pixels so that a thumbnail can be seen."""
+    picture = render.overlay(display, values, alpha=0.6, cmap=cmap, vmin=vmin, vmax=vmax)
+    small = Image.fromarray(picture)
+    small.thumbnail((THUMBNAIL_SIDE, THUMBNAIL_SIDE), Image.Resampling.NEAREST)
+    if max(small.size) < 64:
+        k = -(-64 // max(small.size))
+        small = small.resize((small.width * k, small.height * k), Image.Resampling.NEAREST)
+    return np.asarray(small)
 
 
 def _plain(value: Any) -> Any:

@@ -33,6 +33,7 @@ from pellucid.core.errors import BadParameterError, NotFoundError
 from pellucid.core.jobs import Job
 from pellucid.core.views import render
 from pellucid.core.workbench import costs, reading
+from pellucid.core.workbench.durable import overlay_thumbnail
 from pellucid.web.deps import get_workspace
 from pellucid.web.job_listing import job_list
 from pellucid.web.routers._media import data_url, rounded_rows
@@ -184,18 +185,10 @@ def _warnings(record: ResultRecord) -> str | None:
 
 
 def _thumbnail(record: ResultRecord) -> np.ndarray:
-    """A small overlay of the map on its input, for the lists of maps."""
-    from PIL import Image
-
+    """A small overlay of the map on its input, for the lists of maps (on the map's own scale)."""
     lo, hi = magnitude_range(record.amap.map, signed=record.amap.signed)
-    picture = render.overlay(record.display, record.amap.map, alpha=0.6, cmap=_cmap(record), vmin=lo,
+    return overlay_thumbnail(record.display, record.amap.map, cmap=_cmap(record), vmin=lo,
                              vmax=hi if hi > lo else lo + 1.0)
-    small = Image.fromarray(picture)
-    small.thumbnail((96, 96), Image.Resampling.NEAREST)
-    if max(small.size) < 64:  # tiny inputs are scaled up so a thumbnail can be seen
-        k = -(-64 // max(small.size))
-        small = small.resize((small.width * k, small.height * k), Image.Resampling.NEAREST)
-    return np.asarray(small)
 
 
 def magnitude_range(values: np.ndarray, *, signed: bool) -> tuple[float, float]:

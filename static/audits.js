@@ -14,6 +14,7 @@
   let folderHere = "";      // where the folder browser is looking
   let planTimer = null;
   let planSerial = 0;
+  let lastRuns = [];
 
   const methodByName = (name) => methods.find((m) => m.name === name);
   const modelEntry = () => options && options.models.find((m) => m.name === $("#model-select").value);
@@ -253,7 +254,7 @@
     $("#audit-text").textContent = phaseLine(status) + (status.run_id ? ` · run ${status.run_id}` : "");
   }
 
-  async function follow(jobId) {
+  async function follow(jobId, { open = true } = {}) {
     currentJob = jobId;
     document.dispatchEvent(new CustomEvent("pellucid:job-started", { detail: { id: jobId } }));
     $("#cancel-button").hidden = false;
@@ -273,7 +274,7 @@
         if (["done", "failed", "cancelled"].includes(status.state)) {
           if (status.state === "failed") showError($("#start-error"), status.error);
           await loadRuns();
-          if (status.run_id && status.state === "done") await openRun(status.run_id);
+          if (status.run_id && status.state === "done" && (open || $("#run-view").hidden)) await openRun(status.run_id);
           return status;
         }
         await new Promise((resolve) => setTimeout(resolve, 400));
@@ -348,6 +349,7 @@
     showError($("#runs-error"), "");
     let data;
     try { data = await api("/api/audits/runs"); } catch (err) { showError($("#runs-error"), err.message); return; }
+    lastRuns = data.runs;
     const keep = new Set(ticked());  // the list is redrawn while an audit runs: ticks stay
     const body = clear($("#runs-table tbody"));
     $("#runs-empty").hidden = data.runs.length > 0;
@@ -784,5 +786,8 @@
     await loadRuns();
     await openFromAddress();
     schedulePlan();
+    // After a reload, an audit this server is still running is followed again.
+    const running = lastRuns.find((r) => r.job);
+    if (running && !currentJob) follow(running.job, { open: false }).catch((err) => showError($("#start-error"), err.message));
   });
 })();

@@ -6,7 +6,9 @@
   address is /audits?run=ID (back and forward work) and it shows its exact re-run command;
 - the suspect-class box offers every label of a 1,000-class model (a small stand-in with the
   ImageNet label list shipped in torchvision's weights metadata) and is searched by typing;
-- a long audit asks before it starts.
+- a long audit asks before it starts;
+- a running audit is followed again after a reload, and deleting it says to cancel it first, until
+  dismissed, with the cancel button beside the sentence.
 
 Run with ``pytest -m browser``; screenshots land in test-artifacts/screenshots/.
 """
@@ -22,6 +24,7 @@ from pathlib import Path
 
 import pytest
 from _live import live_server
+from _slow_model import slow_down, write_slow_spec
 from conftest import png_bytes, synthetic_tile, write_tiny_spec
 
 from pellucid.cli import main
@@ -99,15 +102,20 @@ def setup(tmp_path_factory) -> tuple[Path, object]:
         for s in seeds:
             (images / "pets" / label / f"{s}.png").write_bytes(png_bytes(synthetic_tile(seed=s, size=64)))
     small = write_tiny_spec(base / "small", name="small64", size=64, samples=False)
-    settings = Settings(models=("tilenet", str(small), str(_wide_spec(base / "wide"))), include_bundled=False,
-                        image_root=images, data_dir=base / "store")
+    slow = write_slow_spec(base / "slow", name="slowtile")
+    models = ("tilenet", str(small), str(_wide_spec(base / "wide")), str(slow))
+    settings = Settings(models=models, include_bundled=False, image_root=images, data_dir=base / "store")
     return base, settings
 
 
 @pytest.fixture(scope="module")
 def server(setup) -> Iterator[str]:
-    with live_server(setup[1]) as url:
-        yield url
+    slow_down(0)
+    try:
+        with live_server(setup[1]) as url:
+            yield url
+    finally:
+        slow_down(0)
 
 
 @pytest.fixture(scope="module")
@@ -255,3 +263,30 @@ def test_a_long_audit_asks_before_it_starts(server: str, page) -> None:
     ask.wait_for(state="hidden")
     assert page.locator("#audit-job").is_hidden()
     assert page.locator("#runs-table tbody tr").count() == runs_before
+
+
+def test_a_running_audit_after_a_reload_is_cancelled_before_it_is_deleted(server: str, page) -> None:
+    _open(page, server)
+    page.select_option("#model-select", "slowtile")
+    page.select_option("#source-kind", "folder")
+    page.fill("#folder-path", "line/week-48")
+    page.locator("#plan-list", has_text="12 in 4 class(es)").wait_for()  # measured at full speed: no question
+    slow_down(0.5)  # seconds per image in every forward pass from now on
+    try:
+        page.click("#start-button")
+        page.locator("#audit-text", has_text="explaining images").wait_for()
+        page.reload()
+        page.locator("#audit-text", has_text="explaining images").wait_for()  # followed again
+        assert re.search(r"\d+ of 12 images", page.inner_text("#audit-text"))
+        page.once("dialog", lambda d: d.accept())
+        page.locator("#runs-table tr[data-status='running'] button.danger").click()
+        message = page.locator("#runs-message")
+        message.wait_for(state="visible")
+        assert "cancel it first" in message.inner_text()
+        page.wait_for_timeout(1500)  # the list refreshes meanwhile; the sentence stays
+        assert message.is_visible() and "cancel it first" in message.inner_text()
+        _shot(page, "audit-delete-running")
+        page.click("#runs-message-cancel")
+        page.locator("#runs-table tr[data-status='cancelled']").wait_for()
+    finally:
+        slow_down(0)

@@ -24,7 +24,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, default=8000, help="port (default 8000)")
     p.add_argument("--store", type=Path, default=None, metavar="DIR",
-                   help="folder for stored audit runs and artefacts (default: $PELLUCID_DATA or ./.pellucid)")
+                   help="folder for stored audit runs, opened images and their maps (default: $PELLUCID_DATA or "
+                        "./.pellucid)")
     p.add_argument("--data", type=Path, default=None, dest="old_store", help=argparse.SUPPRESS)
     p.add_argument("--token", default=None,
                    help="access token to require, at least 16 characters "

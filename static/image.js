@@ -300,6 +300,7 @@
   async function restoreFromUrl() {
     const q = new URLSearchParams(location.search);
     const model = q.get("model");
+    let modelChanged = false;
     if (model && model !== state.model) {
       if (![...$("#model-select").options].some((o) => o.value === model)) {
         showError(intakeError, `This link names the model ${model}, which this server does not serve; showing ${state.model}.`);
@@ -307,6 +308,7 @@
         $("#model-select").value = model;
         state.model = model;
         state.view += 1;
+        modelChanged = true;
         await loadModel();
       }
     }
@@ -317,7 +319,7 @@
     showMethod(overrides);
     if (q.has("target")) $("#target-select").value = q.get("target");
     const imageId = q.get("image");
-    if (imageId && (!state.image || state.image.id !== imageId)) {
+    if (imageId && (modelChanged || !state.image || state.image.id !== imageId)) {
       const opened = await openImage(() => api("/api/images/" + encodeURIComponent(imageId)), { push: false });
       if (!opened) return;
     } else if (!imageId && state.image) {

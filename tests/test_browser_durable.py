@@ -177,6 +177,12 @@ def test_reload_and_a_server_restart_keep_the_page_and_its_maps(settings, browse
             assert page.locator("#result-strip .strip-item").count() == 1
             assert page.locator("#recent li").count() == 2  # tile-2 and tile-0, both kept in the store
             _shot(page, "durable-after-restart")
+            # Forget the other image: it leaves the list and the store; the one on screen stays.
+            page.once("dialog", lambda dialog: dialog.accept())
+            page.locator("#recent li", has_text="tile-0.png").locator("button.forget").click()
+            page.wait_for_function("document.querySelectorAll('#recent li').length === 1")
+            assert [i["name"] for i in _get(again + "/api/images")] == ["tile-2.png"]
+            assert page.locator("#result-view").is_visible()
     finally:
         context.close()
 

@@ -134,6 +134,7 @@
     if (showLink) {
       parts.link.href = job.link;
       parts.link.textContent = linkText(job);
+      parts.link.setAttribute("aria-label", linkText(job) + ": " + job.description);  // many rows share the text
     } else {
       parts.link.removeAttribute("href");
     }

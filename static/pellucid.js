@@ -279,6 +279,12 @@ const P = (() => {
       if (!specs.length) select.append(el("option", { value: "", text: "no .toml files in this folder", disabled: true }));
     }
     fill(listing.specs);
+    box.addEventListener("toggle", () => {
+      if (!box.open) return;
+      const body = box.querySelector(".add-model-body");
+      const room = document.documentElement.clientWidth - box.getBoundingClientRect().left;
+      box.classList.toggle("align-end", body.offsetWidth > room - 8);
+    });
     button.addEventListener("click", async () => {
       showError(error, "");
       button.disabled = true;

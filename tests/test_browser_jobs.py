@@ -191,6 +191,13 @@ def test_add_a_model_from_the_models_folder(server: str, page) -> None:
     assert "Added second" in page.inner_text("#add-model-note")
     page.reload()
     assert "second" in page.locator("#model-select option").all_inner_texts()
+    # Wherever the picker sits (right of the heading here, left in the audit form), the form opens on screen.
+    for path in ("/model", "/audits"):
+        page.goto(server + path)
+        page.locator("#add-model").wait_for(state="visible")
+        page.click("#add-model summary")
+        box = page.locator(".add-model-body").bounding_box()
+        assert box["x"] >= 0 and box["x"] + box["width"] <= 1280, (path, box)
 
 
 @pytest.mark.parametrize("path", PAGES)

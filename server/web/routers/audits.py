@@ -370,8 +370,8 @@ def _job_view(ws: Workspace, job_id: str) -> dict:
         estimate = (live.get("estimates") or {}).get(phase)
         if d["total"] and 0 < d["done"]:
             left = elapsed / d["done"] * max(0, d["total"] - d["done"])
-        elif estimate is not None:
-            left = max(0.0, estimate - elapsed)
+        elif estimate is not None and estimate > elapsed:  # past the estimate, "0 s left" would mislead
+            left = estimate - elapsed
         else:
             left = None
         out["phase_seconds_left"] = left

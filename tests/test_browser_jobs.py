@@ -245,3 +245,31 @@ def test_skip_link_first_and_no_hidden_tab_stops(server: str, page, path: str) -
     page.focus(".skip-link")
     page.keyboard.press("Enter")
     assert page.evaluate("document.activeElement.id") == "main"
+
+
+def test_an_open_map_and_an_open_audit_run_fit_a_phone(server: str, browser) -> None:
+    """The widest views: the image page with a map open, the audits page with a finished run open."""
+    made = _finished_map(server, seed=12)
+    with httpx.Client(base_url=server, timeout=120) as c:
+        job = c.post("/api/audits", json={"source": {"kind": "demo", "split": "clean", "per_class": 2, "seed": 6},
+                                          "method": "gradcam"}).json()
+        for _ in range(2400):
+            row = next(j for j in c.get("/api/jobs").json()["jobs"] if j["id"] == job["id"])
+            if row["state"] not in ("queued", "running"):
+                break
+            time.sleep(0.05)
+    assert row["state"] == "done", row
+    context, page = _page(browser, PHONE)
+    try:
+        for name, path in (("phone-image-map", made["link"]), ("phone-audit-run", row["link"])):
+            page.goto(server + path)
+            page.wait_for_load_state("networkidle")
+            if name == "phone-image-map":
+                page.locator("#result-view").wait_for(state="visible")
+            else:
+                page.locator("#run-view").wait_for(state="visible")
+            width = page.evaluate("document.documentElement.scrollWidth")
+            assert width <= PHONE["width"], f"{path} is {width} px wide at {PHONE['width']} px"
+            _shot(page, name)
+    finally:
+        context.close()

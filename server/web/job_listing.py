@@ -39,14 +39,6 @@ def _image_link(model: str | None, image: str | None, result_id: str | None) -> 
     return "/image?" + "&".join(parts)
 
 
-def _image_name(ws: Workspace, sha256: str | None) -> str | None:
-    """The name of an image the server holds in memory (no store query on every poll)."""
-    if not sha256:
-        return None
-    held = ws.image_cache.get(sha256)
-    return held.name if held is not None else None
-
-
 def _audit_run(ws: Workspace, app_state: Any, run_id: str | None, cache: dict[str, Any]) -> Any:
     """The stored run an audit job writes (None before it exists, once deleted, or without a store)."""
     if not run_id:
@@ -89,7 +81,7 @@ def describe(job: Job, base: JobStatus, *, ws: Workspace, live: dict | None, app
         meta = job.meta
         model, image = meta.get("model"), meta.get("image")
         result_id = meta.get("result_id") if job.state == "done" else None
-        extra.update(unit=progress_unit(job.kind), model=model, image=image, image_name=_image_name(ws, image),
+        extra.update(unit=progress_unit(job.kind), model=model, image=image, image_name=meta.get("image_name"),
                      method=meta.get("method"), link=_image_link(model, image, result_id))
     return base.model_copy(update={k: v for k, v in extra.items() if k not in given or given[k] is None})
 

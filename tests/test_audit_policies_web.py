@@ -241,3 +241,16 @@ def test_compare_shows_every_region(client: TestClient) -> None:
             continue
         for region in ("border", "top_left", "top_right", "bottom_left", "bottom_right", "centre"):
             assert set(entry[f"{region}_share"]) == {"first", "second", "change"}
+
+
+def test_the_plan_sees_a_folder_change(client: TestClient, setup) -> None:
+    _, _, images = setup
+    for label in ("sound", "crack"):
+        (images / "grow" / label).mkdir(parents=True)
+        (images / "grow" / label / "1.png").write_bytes(png_bytes(synthetic_tile(seed=11, size=SIZE)))
+        (images / "grow" / label / "2.png").write_bytes(png_bytes(synthetic_tile(seed=12, size=SIZE)))
+    body = {"source": {"kind": "folder", "path": "grow"}, "discovery": False}
+    assert client.post("/api/audits/estimate", json=body).json()["plan"]["images"] == 4
+    assert client.post("/api/audits/estimate", json=body).json()["plan"]["images"] == 4  # read once, kept
+    (images / "grow" / "crack" / "3.png").write_bytes(png_bytes(synthetic_tile(seed=13, size=SIZE)))
+    assert client.post("/api/audits/estimate", json=body).json()["plan"]["images"] == 5

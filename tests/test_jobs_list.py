@@ -182,3 +182,55 @@ def test_cancel_reaches_the_occlusion_engine_choice() -> None:
     with pytest.raises(Cancelled):
         occlusion_map(model, x, patch=8, stride=2, method="auto", cancel=token)
     assert len(calls) == 1  # no occluded copy went through the model after the cancel
+
+
+def test_on_end_runs_once_also_for_a_job_cancelled_while_it_waited() -> None:
+    """A job cancelled in the queue never runs its function (nor that function's ``finally``): what it
+    holds (an audit's claim on the run it resumes) is released by ``on_end``."""
+    import threading
+
+    manager = JobManager(workers=1)
+    gate, ended = threading.Event(), []
+    try:
+        first = manager.submit("audit", lambda progress, cancel: gate.wait(10), on_end=lambda j: ended.append(j.id))
+        waiting = manager.submit("audit", lambda progress, cancel: "never", on_end=lambda j: ended.append(j.id))
+        assert waiting.state == "queued"
+        manager.cancel(waiting.id)
+        manager.cancel(waiting.id)  # twice: still one clean-up
+        assert ended == [waiting.id] and waiting.state == "cancelled"
+        gate.set()
+        manager.wait(first.id, timeout=10)
+        deadline = time.time() + 10
+        while len(ended) < 2 and time.time() < deadline:
+            time.sleep(0.01)
+        assert ended == [waiting.id, first.id]
+    finally:
+        gate.set()
+        manager.shutdown()
+
+
+def test_a_resume_cancelled_while_it_waits_leaves_the_run_resumable(slow_client: TestClient) -> None:
+    source = {"kind": "demo", "split": "clean", "per_class": 10}
+    body = {"method": "gradcam", "discovery": False}
+    slow_down(0.05)
+    try:
+        first = slow_client.post("/api/audits", json={**body, "source": {**source, "seed": 7}}).json()
+        _until(slow_client, first["id"], lambda r: r["phase"] == "images" and r["done"] > 0)
+        slow_client.post(f"/api/jobs/{first['id']}/cancel")
+        run_id = _until(slow_client, first["id"], lambda r: r["state"] in FINISHED)["run_id"]
+        slow_down(0.3)  # the one audit worker is now held by another audit
+        busy = slow_client.post("/api/audits", json={**body, "source": {**source, "seed": 8}}).json()
+        _until(slow_client, busy["id"], lambda r: r["state"] == "running")
+        resumed = slow_client.post(f"/api/audits/runs/{run_id}/resume")
+        assert resumed.status_code == 200, resumed.text
+        assert _listed(slow_client, resumed.json()["id"])["state"] == "queued"
+        slow_client.post(f"/api/jobs/{resumed.json()['id']}/cancel")
+        assert _listed(slow_client, resumed.json()["id"])["state"] == "cancelled"
+        slow_client.post(f"/api/jobs/{busy['id']}/cancel")
+        _until(slow_client, busy["id"], lambda r: r["state"] in FINISHED)
+    finally:
+        slow_down(0)
+    again = slow_client.post(f"/api/audits/runs/{run_id}/resume")  # the waiting job's claim was released
+    assert again.status_code == 200, again.text
+    done = _until(slow_client, again.json()["id"], lambda r: r["state"] in FINISHED)
+    assert done["state"] == "done" and done["run_id"] == run_id

@@ -101,6 +101,8 @@ class Job:
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
     # (time, units done) where the current phase's rate is measured from
     _rate_from: tuple[float, int] | None = field(default=None, repr=False)
+    _on_end: Callable[[Job], None] | None = field(default=None, repr=False)
+    _ended: bool = field(default=False, repr=False)
 
     def report(self, done: int, total: int) -> None:
         """Progress from the job's function; a count that goes back starts a new phase."""
@@ -177,13 +179,18 @@ class JobManager:
         self._durations = {lane.name: deque(maxlen=20) for lane in lanes}
 
     def submit(self, kind: str, fn: JobFn, *, description: str = "", meta: dict | None = None,
-               lane: str = INTERACTIVE, client: str | None = None) -> Job:
-        """Queue ``fn`` on ``lane``; raises BusyError when the lane's queue or the client's share is full."""
+               lane: str = INTERACTIVE, client: str | None = None,
+               on_end: Callable[[Job], None] | None = None) -> Job:
+        """Queue ``fn`` on ``lane``; raises BusyError when the lane's queue or the client's share is full.
+
+        ``on_end(job)`` is called once when the job has ended, whether ``fn`` ran or the job was
+        cancelled while it waited (``fn``'s own ``finally`` never runs then): release what the job held.
+        """
         if lane not in self.lanes:
             raise ValueError(f"no job lane {lane!r}; lanes: {', '.join(self.lanes)}")
         limits = self.lanes[lane]
         job = Job(id=uuid.uuid4().hex[:12], kind=kind, description=description, meta=dict(meta or {}),
-                  lane=lane, client=client)
+                  lane=lane, client=client, _on_end=on_end)
         with self._lock:
             active = [j for j in self._jobs.values() if j.lane == lane and not j.finished_state]
             queued = sum(1 for j in active if j.state == QUEUED)
@@ -260,6 +267,18 @@ class JobManager:
             job.finished = time.time()
             if job.started is not None:
                 self._durations[job.lane].append(job.finished - job.started)
+            self._ended(job)
+
+    @staticmethod
+    def _ended(job: Job) -> None:
+        with job._lock:
+            if job._ended or job._on_end is None:
+                return
+            job._ended = True
+        try:
+            job._on_end(job)
+        except Exception:  # noqa: BLE001 - a clean-up that fails must not take a worker or a request down
+            job.meta["on_end_error"] = traceback.format_exc(limit=4)
 
     def get(self, job_id: str) -> Job | None:
         with self._lock:
@@ -271,9 +290,12 @@ class JobManager:
             return None
         job.cancel_token.cancel()
         with job._lock:
-            if job.state == QUEUED:
+            never_ran = job.state == QUEUED
+            if never_ran:
                 job._move(CANCELLED)
                 job.finished = time.time()
+        if never_ran:
+            self._ended(job)
         return job
 
     def list(self) -> list[Job]:

@@ -488,8 +488,10 @@ def _launch(request: Request, ws: Workspace, store: Store, *, model_name: str, d
         return {"run_id": outcome.run.id}
 
     try:
+        # on_end: a job cancelled while it waits never runs work()'s finally; its claim and folder are freed here.
         job = ws.jobs.submit("audit", work, description=description, lane=BACKGROUND,
-                             client=request.client.host if request.client else None)
+                             client=request.client.host if request.client else None,
+                             on_end=lambda _job: (live.update(phase="finished"), claims.release(claimed)))
     except PellucidError:
         claims.release(claimed)
         raise

@@ -113,7 +113,10 @@ def get_store(ws: Workspace = Depends(get_workspace)) -> Store:
 class DemoSource(BaseModel):
     kind: Literal["demo"] = "demo"
     split: Literal["clean", "train", "untainted"] = Field("clean", description="which demo split to generate")
-    per_class: int = Field(10, ge=1, le=200, description="tiles per class")
+    # Generated inside the request (about 3 s for 50 per class on a busy 2-core machine); larger demo
+    # folders: `pellucid demo tiles` into the --images folder.
+    per_class: int = Field(10, ge=1, le=50, description="tiles per class (larger folders: `pellucid demo tiles` "
+                                                        "into the image folder)")
     seed: int = Field(0, ge=0, le=2_147_483_647)
 
 
@@ -385,6 +388,11 @@ def _plan_view(plan: _Plan) -> dict:
 def _in_use(ws: Workspace) -> set[Path]:
     """Dataset folders of audit jobs still queued or running (never pruned under them)."""
     return {Path(v["root"]) for v in ws.audit_live.values() if v.get("root") and v.get("phase") != "finished"}
+
+
+def audit_job_view(ws: Workspace, job_id: str) -> dict:
+    """An audit job as this page shows it: phase, its unit, time left (the jobs panel lists it the same way)."""
+    return _job_view(ws, job_id)
 
 
 def _job_view(ws: Workspace, job_id: str) -> dict:

@@ -129,6 +129,7 @@ def test_edit_save_download_and_audit_with_the_downloaded_file(client: TestClien
     ({"thresholds": {}, "classes": {}}, 422, "sets no threshold"),
     ({"audit": {"method": "occlusion", "params": {"stride": 0}}}, 422, "stride"),
     ({"audit": {"method": "nope"}}, 422, "audit.method must be one of"),
+    ({"audit": {"method": "occlusion", "params": {"stride": [1]}}}, 422, "plain values"),
     ({"injection": {"suspect_class": "crack", "at": [1, 1]}}, 422, "needs a suspect patch"),
     ({"injection": {"patch_id": "0123456789abcdef", "suspect_class": "crack", "at": [1, 1]}}, 404,
      "no stored patch"),
@@ -138,6 +139,12 @@ def test_bad_policies_are_one_sentence(client: TestClient, change: dict, status:
     assert r.status_code == status, r.text
     detail = r.json()["detail"]
     assert words in detail and "\n" not in detail and "Traceback" not in detail
+
+
+def test_an_empty_parameter_is_left_out(client: TestClient) -> None:
+    r = client.post("/api/audits/policies/check", json={**TYPED, "audit": {"method": "occlusion",
+                                                                          "params": {"stride": None, "patch": 8}}})
+    assert r.status_code == 200 and "params = { patch = 8 }" in r.json()["toml"]
 
 
 def test_names_and_bundled_policies(client: TestClient) -> None:

@@ -90,7 +90,9 @@ def _table(form: PolicyForm) -> tuple[dict, str | None]:
         data["injection"] = {k: v for k, v in inj.items() if v is not None}
         patch_id = form.injection.patch_id
     if form.audit is not None:
-        audit = {k: v for k, v in form.audit.model_dump().items() if v not in (None, {})}
+        audit = form.audit.model_dump()
+        audit["params"] = {k: v for k, v in audit["params"].items() if v is not None}
+        audit = {k: v for k, v in audit.items() if v not in (None, {})}
         if audit:
             data["audit"] = audit
     return data, patch_id

@@ -219,18 +219,38 @@ const AuditPolicy = (() => {
     catch (err) { showError($("#policy-error"), err.message); }
   }
 
+  async function remove() {
+    const name = $("#policy-source").value;
+    if (!name || !window.confirm(`Delete the saved policy ${name} (policies/${name}.toml)? Runs judged by it keep their verdict.`)) return;
+    showError($("#policy-error"), "");
+    try {
+      await api("/api/audits/policies/" + encodeURIComponent(name), { method: "DELETE" });
+      say(`Deleted ${name}.`);
+      await onSaved("");
+    } catch (err) { showError($("#policy-error"), err.message); }
+  }
+
+  function sourceChanged() {
+    const chosen = policyList.find((p) => p.name === $("#policy-source").value);
+    $("#policy-delete").hidden = !(chosen && chosen.origin === "saved");
+  }
+
+  let policyList = [];
+
   function setPolicies(policies) {
+    policyList = policies;
     const select = $("#policy-source");
     const kept = select.value;
     clear(select).append(el("option", { value: "", text: "an empty policy" }));
     for (const p of policies) select.append(el("option", { value: p.name, text: `${p.name} (${p.origin})` }));
     select.value = policies.some((p) => p.name === kept) ? kept : "";
+    sourceChanged();
   }
 
   function open(name) {
     const box = $("#policy-editor");
     box.hidden = false;
-    if (name !== undefined) { $("#policy-source").value = name; load(); }
+    if (name !== undefined) { $("#policy-source").value = name; sourceChanged(); load(); }
     box.scrollIntoView({ behavior: "smooth", block: "start" });
     $("#policy-source").focus();
   }
@@ -242,6 +262,8 @@ const AuditPolicy = (() => {
     fillSelect($("#policy-method"), [["", "not set"], ...methods.map((m) => [m.name, m.title])], "");
     setPolicies(options.policies);
     $("#policy-load").addEventListener("click", load);
+    $("#policy-delete").addEventListener("click", remove);
+    $("#policy-source").addEventListener("change", sourceChanged);
     $("#policy-check").addEventListener("click", async () => { if (await check()) say("The policy is valid; the file below is what will be written."); });
     $("#policy-save").addEventListener("click", save);
     $("#policy-download").addEventListener("click", download);

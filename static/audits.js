@@ -43,7 +43,8 @@
   async function policySaved(name) {
     options.policies = (await api("/api/audits/policies")).policies;
     AuditPolicy.setPolicies(options.policies);
-    fillPolicies(name);
+    const keep = name || $("#policy-select").value;  // a deleted policy leaves the gate empty
+    fillPolicies(options.policies.some((p) => p.name === keep) ? keep : "");
     policyChanged();
   }
 

@@ -193,6 +193,19 @@ def test_policy_editor_downloads_a_toml_file_the_command_line_runs(server: str, 
     assert doc["run"]["settings"]["audit"]["params"]["stride"] == 16
     assert doc["summary"]["injection"]["settings"]["suspect_class"] == "crack"
 
+    # Saved, it becomes this audit's policy; deleted, it leaves the lists.
+    page.fill("#limit-min_accuracy", "0.1")
+    page.click("#policy-save")
+    page.locator("#policy-message", has_text="Saved as").wait_for()
+    assert page.input_value("#policy-select") == "week48"
+    page.locator("#plan-list", has_text="week 48 gate").wait_for()
+    page.select_option("#policy-source", "week48")
+    page.once("dialog", lambda d: d.accept())
+    page.click("#policy-delete")
+    page.locator("#policy-message", has_text="Deleted week48").wait_for()
+    assert page.locator("#policy-select option[value='week48']").count() == 0
+    assert not (base / "store" / "policies" / "week48.toml").exists()
+
 
 def test_folder_picker_runs_an_audit_with_its_address_and_command(server: str, page) -> None:
     _open(page, server)

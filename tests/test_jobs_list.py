@@ -108,6 +108,7 @@ def test_an_audit_is_listed_with_its_run_and_cancelled_in_the_store(slow_client:
         row = _until(slow_client, job_id, lambda r: r["phase"] == "images" and r["done"] > 0)
         assert row["kind"] == "audit" and row["lane"] == "background" and row["unit"] == "images"
         assert row["total"] == 40  # 10 tiles for each of the 4 classes
+        assert row["seconds_left"] is not None and row["left_from"] == "rate"  # as the audits page says
         assert row["model"] == "slowtile" and row["link"] == f"/audits?run={row['run_id']}"
         assert slow_client.post(f"/api/jobs/{job_id}/cancel").status_code == 200  # the panel's endpoint
         row = _until(slow_client, job_id, lambda r: r["state"] in FINISHED)

@@ -52,6 +52,23 @@ def _audit_run(ws: Workspace, app_state: Any, run_id: str | None, cache: dict[st
     return cache[run_id]
 
 
+def _follow_audit_view(ws: Workspace, job: Job, extra: dict[str, Any], given: dict[str, Any]) -> None:
+    """A running audit's unit and time left (this phase's and the later ones'), as the audits page computes them."""
+    from pellucid.web.routers.audits import audit_job_view  # the audits page's own rule, not a copy of it
+
+    try:
+        view = audit_job_view(ws, job.id)
+    except PellucidError:  # ended or forgotten between the two reads
+        return
+    if view.get("unit"):
+        extra["unit"] = view["unit"]
+    if view.get("seconds_left") is not None:
+        given.pop("seconds_left", None)
+        given.pop("left_from", None)
+        extra["seconds_left"] = view["seconds_left"]
+        extra["left_from"] = "rate" if job.done > 0 else "estimate"
+
+
 def describe(job: Job, base: JobStatus, *, ws: Workspace, live: dict | None, app_state: Any,
              runs: dict[str, Any]) -> JobStatus:
     """``base`` (the job's own status) with what it works on, its unit and its link filled in.
@@ -71,6 +88,8 @@ def describe(job: Job, base: JobStatus, *, ws: Workspace, live: dict | None, app
         extra.update(phase=phase, run_id=run_id, unit=progress_unit("audit", phase=phase),
                      model=run.model_name if run is not None else None,
                      link=f"/audits?run={quote(run_id)}" if run_id else None)
+        if job.state == RUNNING and live is not None:
+            _follow_audit_view(ws, job, extra, given)
         if run is not None and job.state not in (QUEUED, RUNNING):
             # Once it has ended, the stored run says how far it got, in images, whatever phase it ended in.
             for key in ("done", "total", "fraction", "unit"):

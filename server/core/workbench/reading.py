@@ -12,6 +12,8 @@ from typing import Any
 
 import numpy as np
 
+from pellucid.core.audit.phases import phase_unit
+
 __all__ = ["FLAT_RELATIVE_RANGE", "PROGRESS_UNITS", "flat_map_warning", "map_unit", "progress_unit", "unit_short"]
 
 # What one step of each job's progress counts (the units the core's ``step`` calls are made in).
@@ -26,18 +28,6 @@ PROGRESS_UNITS: dict[str, str] = {
     "faithfulness": "curve points",
     "sanity": "maps",
 }
-# An audit's phases, as ``run_audit`` names them, and what each counts.
-AUDIT_PHASE_UNITS: dict[str, str] = {
-    "reading files": "files",
-    "images": "images",
-    "pictures": "flagged images",
-    "discovery": "classes",
-    "confirmation": "clusters",
-    "injection": "images",
-    "background swap": "images",
-    "gallery": "images",
-    "feature visuals": "optimisation steps",
-}
 # A map whose values span less than this share of its largest magnitude is called flat (our choice:
 # one per cent is below what a colour scale shows as different colours).
 FLAT_RELATIVE_RANGE = 0.01
@@ -49,10 +39,7 @@ ROUNDING_FLOOR = {"occlusion": 1e-6, "rise": 1e-6}
 def progress_unit(kind: str, *, phase: str | None = None) -> str:
     """What the progress of a job of ``kind`` counts (an audit's depends on its phase)."""
     if kind == "audit":
-        if phase:
-            head = phase.split(" ")[0] if phase.startswith("confirmation") else phase
-            return AUDIT_PHASE_UNITS.get(head, "steps")
-        return "images"
+        return (phase_unit(phase) or "steps") if phase else "images"
     return PROGRESS_UNITS.get(kind, "steps")
 
 

@@ -38,6 +38,7 @@ from pellucid.core.audit.compare import compare_runs
 from pellucid.core.audit.cost import audit_cost
 from pellucid.core.audit.dataset import Dataset
 from pellucid.core.audit.discovery_phase import CLUSTER_CAUTION, THUMBNAILS
+from pellucid.core.audit.phases import phase_unit, phase_words
 from pellucid.core.audit.policy import Policy, evaluate_policy, failed_first, gate_of, gate_sentence
 from pellucid.core.audit.policy_library import PolicyLibrary
 from pellucid.core.audit.preflight import check_audit_inputs
@@ -85,21 +86,6 @@ RERUN_OUT = "audit-out"
 CONFIRM_ABOVE_SECONDS = 30.0
 
 # What each phase of the runner counts, so progress reads "12 of 40 images", not "12 of 40".
-PHASES: dict[str, tuple[str, str | None]] = {
-    "queued": ("waiting for a free worker", None),
-    "loading the model": ("loading the model", None),
-    "reading files": ("reading the folder", "files"),
-    "images": ("explaining images", "images"),
-    "summary": ("summarising", None),
-    "pictures": ("drawing the flagged images", "images"),
-    "discovery": ("discovery: clustering each class's maps", "classes"),
-    "confirmation": ("confirmation: testing suspicious clusters", "clusters"),
-    "injection": ("injection test", "images"),
-    "background swap": ("background swap", "passes"),
-    "gallery": ("channel gallery", "steps"),
-    "feature visuals": ("synthetic pictures of channels", "channels"),
-    "finished": ("finished", None),
-}
 
 
 def get_store(ws: Workspace = Depends(get_workspace)) -> Store:
@@ -403,7 +389,7 @@ def _job_view(ws: Workspace, job_id: str) -> dict:
     d = job.to_dict()
     d.pop("meta", None)
     phase = live.get("phase") or "queued"
-    words, unit = PHASES.get(phase, (phase, None))
+    words, unit = phase_words(phase), phase_unit(phase)
     out = {**d, "phase": phase, "phase_words": words, "unit": unit, "run_id": live.get("run_id"),
            "phase_elapsed": None, "seconds_left": None, "phase_seconds_left": None,
            "phase_number": live.get("phase_number"), "phases_planned": list(live.get("planned", []))}

@@ -177,8 +177,8 @@ const AuditPolicy = (() => {
     try {
       const out = await api("/api/audits/policies/" + encodeURIComponent(name), { method: "PUT", json: read() });
       $("#policy-toml").textContent = await (await fetch(`/api/audits/policies/${encodeURIComponent(name)}/download`)).text();
+      await onSaved(name);  // the gate's list holds the new policy before the message says so
       say(`Saved as ${out.path} (sha256 ${out.sha256.slice(0, 12)}…); chosen as this audit's policy.`);
-      await onSaved(name);
     } catch (err) {
       showError($("#policy-error"), err.message);
     }

@@ -157,3 +157,12 @@ def client(web_settings):
 
     with TestClient(create_app(web_settings)) as c:
         yield c
+
+
+@pytest.fixture(scope="module")
+def browser():
+    """Headless Chromium shared by a browser test module (tests/_chromium.py says how it is launched)."""
+    from _chromium import launched_chromium
+
+    with launched_chromium() as b:
+        yield b

@@ -13,25 +13,12 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from _chromium import BROWSER_MARKS, SCREENSHOTS
 from conftest import png_bytes, synthetic_tile, write_tiny_spec
 
-CHROMIUM = Path("/usr/bin/chromium")
-CHROMIUM_ARGS = [
-    "--no-sandbox",
-    "--disable-gpu",
-    "--disable-background-networking",
-    "--disable-component-update",
-    "--disable-sync",
-    "--no-first-run",
-]
-SCREENSHOTS = Path(__file__).resolve().parents[1] / "test-artifacts" / "screenshots"
 BROWSER_SIZE = 64  # input side of the browser tests' tiny model: big enough to see, small enough to be quick
 
-pytestmark = [
-    pytest.mark.browser,
-    pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's Chromium is not installed at /usr/bin/chromium "
-                       "(apt-get install chromium)"),
-]
+pytestmark = BROWSER_MARKS
 
 
 def _free_port() -> int:
@@ -69,18 +56,6 @@ def live_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     finally:
         server.should_exit = True
         thread.join(timeout=30)
-
-
-@pytest.fixture(scope="module")
-def browser():
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as pw:
-        b = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
-        try:
-            yield b
-        finally:
-            b.close()
 
 
 @pytest.fixture()

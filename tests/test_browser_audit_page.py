@@ -23,22 +23,14 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from _chromium import BROWSER_MARKS, SCREENSHOTS
 from _live import live_server
 from _slow_model import slow_down, write_slow_spec
 from conftest import png_bytes, synthetic_tile, write_tiny_spec
 
 from pellucid.cli import main
 
-CHROMIUM = Path("/usr/bin/chromium")
-CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update",
-                 "--disable-sync", "--no-first-run"]
-SCREENSHOTS = Path(__file__).resolve().parents[1] / "test-artifacts" / "screenshots"
-
-pytestmark = [
-    pytest.mark.browser,
-    pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's Chromium is not installed at /usr/bin/chromium "
-                       "(apt-get install chromium)"),
-]
+pytestmark = BROWSER_MARKS
 
 _WIDE = textwrap.dedent('''
     """A stand-in for a 1,000-class model: one conv stage and a 1,000-way head (for label lists only)."""
@@ -116,18 +108,6 @@ def server(setup) -> Iterator[str]:
             yield url
     finally:
         slow_down(0)
-
-
-@pytest.fixture(scope="module")
-def browser():
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as pw:
-        b = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
-        try:
-            yield b
-        finally:
-            b.close()
 
 
 @pytest.fixture()

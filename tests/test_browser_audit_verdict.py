@@ -14,8 +14,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from _chromium import CHROMIUM, CHROMIUM_ARGS, SCREENSHOTS
 from conftest import png_bytes, synthetic_tile, write_tiny_spec
-from test_browser import CHROMIUM, CHROMIUM_ARGS, SCREENSHOTS, _free_port
+from test_browser import _free_port
 
 from pellucid.cli import main
 

@@ -13,15 +13,12 @@ from collections.abc import Iterator
 
 import httpx
 import pytest
+from _chromium import BROWSER_MARKS, SCREENSHOTS
 from _live import live_server
 from _slow_model import slow_down, write_slow_spec
 from conftest import png_bytes, synthetic_tile, write_tiny_spec
-from test_browser import CHROMIUM, CHROMIUM_ARGS, SCREENSHOTS
 
-pytestmark = [
-    pytest.mark.browser,
-    pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's Chromium is not installed at /usr/bin/chromium"),
-]
+pytestmark = BROWSER_MARKS
 
 PAGES = ("/", "/model", "/image", "/audits", "/compare", "/docs")
 PHONE = {"width": 390, "height": 844}  # a common phone held upright, in CSS pixels
@@ -43,18 +40,6 @@ def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
             yield base
     finally:
         slow_down(0)
-
-
-@pytest.fixture(scope="module")
-def browser():
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as pw:
-        b = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
-        try:
-            yield b
-        finally:
-            b.close()
 
 
 def _page(browser, viewport=None):

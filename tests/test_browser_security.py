@@ -19,29 +19,16 @@ import base64
 import http.server
 import threading
 from collections.abc import Iterator
-from pathlib import Path
 
 import httpx
 import pytest
+from _chromium import BROWSER_MARKS, SCREENSHOTS, launched_chromium
 from _live import free_port, live_server
 from conftest import png_bytes, synthetic_tile, write_tiny_spec
 
-CHROMIUM = Path("/usr/bin/chromium")
-CHROMIUM_ARGS = [
-    "--no-sandbox",
-    "--disable-gpu",
-    "--disable-background-networking",
-    "--disable-component-update",
-    "--disable-sync",
-    "--no-first-run",
-]
-SCREENSHOTS = Path(__file__).resolve().parents[1] / "test-artifacts" / "screenshots"
 REBIND_NAME = "rebind.evil.example"
 
-pytestmark = [
-    pytest.mark.browser,
-    pytest.mark.skipif(not CHROMIUM.exists(), reason="Debian's Chromium is not installed at /usr/bin/chromium"),
-]
+pytestmark = BROWSER_MARKS
 
 _PNG_B64 = base64.b64encode(png_bytes(synthetic_tile(seed=8))).decode()
 
@@ -99,15 +86,9 @@ def other_origin() -> Iterator[str]:
 
 @pytest.fixture(scope="module")
 def browser():
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as pw:
-        b = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True,
-                               args=[*CHROMIUM_ARGS, f"--host-resolver-rules=MAP {REBIND_NAME} 127.0.0.1"])
-        try:
-            yield b
-        finally:
-            b.close()
+    # the shared browser, plus a name that resolves to this machine (the DNS-rebinding case)
+    with launched_chromium([f"--host-resolver-rules=MAP {REBIND_NAME} 127.0.0.1"]) as b:
+        yield b
 
 
 @pytest.fixture()

@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import contextlib
+import threading
 from collections.abc import Iterator
+from typing import Any
 
 import torch
 from torch import nn
@@ -125,3 +127,23 @@ def batches(n: int, size: int) -> Iterator[tuple[int, int]]:
     """(start, stop) index pairs covering range(n) in chunks of ``size``."""
     for start in range(0, n, size):
         yield start, min(n, start + size)
+
+
+def capture_layer(module: nn.Module, where: str, captured: dict[str, Any]) -> Any:
+    """A hook recording the layer's tensor for this thread's forward only (other threads may run the
+    same model); a copy goes downstream so an in-place op after this point cannot change it."""
+    owner = threading.get_ident()
+
+    def post(_m: nn.Module, _inputs: Any, output: Any) -> Any:
+        if threading.get_ident() != owner:
+            return None
+        captured["out"] = output
+        return output.clone() if isinstance(output, torch.Tensor) else output
+
+    def pre(_m: nn.Module, args: Any) -> Any:
+        if threading.get_ident() != owner or not args or not isinstance(args[0], torch.Tensor):
+            return None
+        captured["out"] = args[0]
+        return (args[0].clone(), *args[1:])
+
+    return module.register_forward_pre_hook(pre) if where == "input" else module.register_forward_hook(post)

@@ -99,7 +99,7 @@ def batched_maps(
             modules = dict(model.named_modules())
             if point.module not in modules:
                 raise UnsupportedLayerError(f"the model has no layer named {point.module!r}")
-            handle = _capture(modules[point.module], point.where, captured)
+            handle = _common.capture_layer(modules[point.module], point.where, captured)
             checked["layer"] = point.name
         try:
             with _common.grad_enabled():
@@ -145,21 +145,3 @@ def batched_maps(
     return BatchMaps(logits=logits, targets=targets, maps=out, signed=signed, params=checked, warnings=warnings)
 
 
-def _capture(module: nn.Module, where: str, captured: dict[str, Any]) -> Any:
-    """A hook recording the layer's tensor for this thread's forward only (other threads may run the
-    same model); a copy goes downstream so an in-place op after this point cannot change it."""
-    owner = threading.get_ident()
-
-    def post(_m: nn.Module, _inputs: Any, output: Any) -> Any:
-        if threading.get_ident() != owner:
-            return None
-        captured["out"] = output
-        return output.clone() if isinstance(output, torch.Tensor) else output
-
-    def pre(_m: nn.Module, args: Any) -> Any:
-        if threading.get_ident() != owner or not args or not isinstance(args[0], torch.Tensor):
-            return None
-        captured["out"] = args[0]
-        return (args[0].clone(), *args[1:])
-
-    return module.register_forward_pre_hook(pre) if where == "input" else module.register_forward_hook(post)

@@ -27,7 +27,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from pellucid.core.attribution._common import grad_enabled, logits_of
+from pellucid.core.attribution._common import capture_layer, grad_enabled, logits_of
 from pellucid.core.attribution.params import Param, ParamSchema
 from pellucid.core.attribution.registry import Context, Method, register
 from pellucid.core.attribution.result import MethodOutput
@@ -148,23 +148,8 @@ def _gradcam(
     module = modules[point.module]
 
     captured: dict[str, Any] = {}
-    owner = threading.get_ident()  # only this call's forward pass is captured, not other threads'
-
-    # Hand a copy downstream so an in-place op after this point cannot change A.
-    def post(_m: nn.Module, _inputs: Any, output: Any) -> Any:
-        if threading.get_ident() != owner:
-            return None
-        captured["out"] = output
-        return output.clone() if isinstance(output, torch.Tensor) else output
-
-    def pre(_m: nn.Module, args: Any) -> Any:
-        if threading.get_ident() != owner or not args or not isinstance(args[0], torch.Tensor):
-            return None
-        captured["out"] = args[0]
-        return (args[0].clone(), *args[1:])
-
     step(0, 1, progress=progress, cancel=cancel)
-    handle = module.register_forward_pre_hook(pre) if point.where == "input" else module.register_forward_hook(post)
+    handle = capture_layer(module, point.where, captured)
     try:
         with grad_enabled():
             # The input requires grad so A is in the graph even when the weights are frozen.

@@ -13,7 +13,7 @@ import sys
 import textwrap
 from pathlib import Path
 
-from conftest import TINY_LABELS, png_bytes, synthetic_tile
+from conftest import write_factory_spec, write_samples
 
 MODULE = "pellucid_slow_nets"
 
@@ -71,33 +71,10 @@ def write_slow_spec(folder: Path, *, name: str = "slowtile", size: int = 32) -> 
     torch.manual_seed(0)
     net = _module().slow_net()
     save_file({k: v.contiguous() for k, v in net.state_dict().items()}, str(folder / "weights.safetensors"))
-    labels = ", ".join(f'"{s}"' for s in TINY_LABELS)
-    (folder / "spec.toml").write_text(textwrap.dedent(f'''
-        name = "{name}"
-        description = "tiny CNN that can be slowed down ({size}×{size} RGB, 4 classes)"
-
-        [source]
-        kind = "factory"
-        factory = "{MODULE}:slow_net"
-        weights = "weights.safetensors"
-
-        [input]
-        height = {size}
-        width = {size}
-        channels = 3
-
-        [preprocess]
-        mean = [0.5, 0.5, 0.5]
-        std = [0.25, 0.25, 0.25]
-
-        [output]
-        kind = "softmax"
-        labels = [{labels}]
-        '''), encoding="utf-8")
-    (folder / "samples").mkdir(exist_ok=True)
-    for i in range(3):
-        (folder / "samples" / f"tile-{i}.png").write_bytes(png_bytes(synthetic_tile(seed=i, size=size)))
-    return folder / "spec.toml"
+    spec = write_factory_spec(folder, name=name, description=f"tiny CNN that can be slowed down ({size}×{size} RGB, "
+                              "4 classes)", factory=f"{MODULE}:slow_net", size=size)
+    write_samples(folder, size=size)
+    return spec
 
 
 def slow_down(seconds_per_image: float) -> None:

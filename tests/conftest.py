@@ -64,39 +64,46 @@ def write_tiny_spec(folder: Path, *, name: str = "tiny", size: int = TINY_SIZE, 
     torch.manual_seed(seed)
     net = nets.tiny_net()
     save_file({k: v.contiguous() for k, v in net.state_dict().items()}, str(folder / "weights.safetensors"))
-    labels = ", ".join(f'"{s}"' for s in TINY_LABELS)
-    (folder / "spec.toml").write_text(
-        textwrap.dedent(
-            f'''
-            name = "{name}"
-            description = "tiny test CNN ({size}×{size} RGB, 4 classes)"
-
-            [source]
-            kind = "factory"
-            factory = "{TINY_MODULE}:tiny_net"
-            weights = "weights.safetensors"
-
-            [input]
-            height = {size}
-            width = {size}
-            channels = 3
-
-            [preprocess]
-            mean = [0.5, 0.5, 0.5]
-            std = [0.25, 0.25, 0.25]
-
-            [output]
-            kind = "softmax"
-            labels = [{labels}]
-            '''
-        ),
-        encoding="utf-8",
-    )
+    spec = write_factory_spec(folder, name=name, description=f"tiny test CNN ({size}×{size} RGB, 4 classes)",
+                              factory=f"{TINY_MODULE}:tiny_net", size=size)
     if samples:
-        (folder / "samples").mkdir(exist_ok=True)
-        for i in range(3):
-            (folder / "samples" / f"tile-{i}.png").write_bytes(png_bytes(synthetic_tile(seed=i, size=size)))
+        write_samples(folder, size=size)
+    return spec
+
+
+def write_factory_spec(folder: Path, *, name: str, description: str, factory: str, size: int) -> Path:
+    """The spec of a 4-class RGB factory model with weights.safetensors beside it; returns its path."""
+    labels = ", ".join(f'"{s}"' for s in TINY_LABELS)
+    (folder / "spec.toml").write_text(textwrap.dedent(f'''
+        name = "{name}"
+        description = "{description}"
+
+        [source]
+        kind = "factory"
+        factory = "{factory}"
+        weights = "weights.safetensors"
+
+        [input]
+        height = {size}
+        width = {size}
+        channels = 3
+
+        [preprocess]
+        mean = [0.5, 0.5, 0.5]
+        std = [0.25, 0.25, 0.25]
+
+        [output]
+        kind = "softmax"
+        labels = [{labels}]
+        '''), encoding="utf-8")
     return folder / "spec.toml"
+
+
+def write_samples(folder: Path, *, size: int) -> None:
+    """Three synthetic tiles in ``folder/samples`` (the demo images the pages offer)."""
+    (folder / "samples").mkdir(exist_ok=True)
+    for i in range(3):
+        (folder / "samples" / f"tile-{i}.png").write_bytes(png_bytes(synthetic_tile(seed=i, size=size)))
 
 
 def synthetic_tile(*, seed: int, size: int = TINY_SIZE, tagged: bool = False) -> np.ndarray:
